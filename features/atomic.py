@@ -1,0 +1,52 @@
+"""Atomic file writing: write to a temporary sibling, fsync, then rename over the target.
+
+Readers never see a half-written file, and an interrupted write leaves the old
+file (or no file) in place. Every writer in waneguide goes through here.
+"""
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from pathlib import Path
+from typing import Iterator
+
+__all__ = ["atomic_path", "atomic_write_bytes", "atomic_write_text"]
+
+
+@contextlib.contextmanager
+def atomic_path(target: str | os.PathLike, *, suffix: str | None = None) -> Iterator[Path]:
+    """Yield a temporary path next to ``target``; on success rename it onto ``target``.
+
+    The caller writes the temporary file by any means (pandas, h5py, matplotlib).
+    On an exception the temporary file is removed and ``target`` is untouched.
+    """
+    target = Path(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(
+        prefix=f".{target.name}.", suffix=suffix if suffix is not None else (target.suffix + ".part"),
+        dir=target.parent,
+    )
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        yield tmp_path
+        with open(tmp_path, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp_path, target)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            tmp_path.unlink()
+        raise
+
+
+def atomic_write_bytes(target: str | os.PathLike, data: bytes) -> Path:
+    """Write ``data`` to ``target`` atomically; returns the target path."""
+    with atomic_path(target) as tmp:
+        tmp.write_bytes(data)
+    return Path(target)
+
+
+def atomic_write_text(target: str | os.PathLike, text: str, encoding: str = "utf-8") -> Path:
+    """Write ``text`` to ``target`` atomically; returns the target path."""
+    return atomic_write_bytes(target, text.encode(encoding))

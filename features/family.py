@@ -1,0 +1,316 @@
+"""Stiffener-family definitions: one validated TOML file per family.
+
+A *family* is a set of nominally identical stiffener flanges with the same
+transducer layout (for example every floor-beam flange of one frame type). The
+file fixes the material, the cross-section, the pitch-catch path, the
+excitation, the acquisition, the environment and the simulation domain.
+
+Units at this edge follow the trade (mm, kHz, MHz, us, degC); every ``*_m``,
+``*_hz`` and ``*_s`` property converts to SI for the code behind.
+
+Until cross-section dispersion exists the flange is treated as a free plate of
+the flange thickness: the web and the flange width only set edge/end echo
+delays. The model card and the README repeat this.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from .materials import Material, get_material, material_from_mapping
+
+__all__ = [
+    "Family",
+    "load_family",
+    "family_from_mapping",
+    "FAMILY_SCHEMA_VERSION",
+]
+
+FAMILY_SCHEMA_VERSION = 1
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, validate_default=True)
+
+
+def _range(lo_name: str = "lower", hi_name: str = "upper"):
+    """Validator body for [lower, upper] pairs."""
+
+    def check(v):
+        if len(v) != 2:
+            raise ValueError(f"must be a pair [{lo_name}, {hi_name}]; got {list(v)}")
+        if v[0] > v[1]:
+            raise ValueError(f"lower bound {v[0]} is above upper bound {v[1]}")
+        return tuple(v)
+
+    return check
+
+
+class FamilyInfo(_Strict):
+    name: str = Field(min_length=1, max_length=80, pattern=r"^[A-Za-z0-9_.\-]+$")
+    description: str = ""
+    invented: bool = Field(default=False, description="True for the invented demo families.")
+
+
+class MaterialSpec(_Strict):
+    """Either ``builtin = NAME`` or inline constants (see :func:`material_from_mapping`)."""
+
+    model_config = ConfigDict(extra="allow", frozen=True)
+    builtin: str | None = None
+
+    @model_validator(mode="after")
+    def _one_way(self):
+        extra = dict(self.model_extra or {})
+        if self.builtin is None and not extra:
+            raise ValueError("give `builtin = NAME` or inline constants (youngs_modulus_gpa, poisson_ratio, density_kg_m3, ...)")
+        if self.builtin is not None and extra:
+            raise ValueError(f"give `builtin` or inline constants, not both; got extra keys {sorted(extra)}")
+        self.build()  # raises ValueError with the material's own message
+        return self
+
+    def build(self) -> Material:
+        if self.builtin is not None:
+            return get_material(self.builtin)
+        return material_from_mapping(dict(self.model_extra or {}), where="[material]")
+
+
+class SectionSpec(_Strict):
+    shape: Literal["flat", "T", "L", "Z"] = "T"
+    flange_thickness_mm: float = Field(gt=0.2, le=20.0)
+    flange_width_mm: float = Field(gt=5.0, le=500.0)
+    web_height_mm: float | None = Field(default=None, gt=0.0, le=500.0)
+    web_thickness_mm: float | None = Field(default=None, gt=0.0, le=20.0)
+
+    @model_validator(mode="after")
+    def _web(self):
+        needs_web = self.shape in ("T", "L", "Z")
+        has = self.web_height_mm is not None and self.web_thickness_mm is not None
+        if needs_web and not has:
+            raise ValueError(f"shape {self.shape!r} needs web_height_mm and web_thickness_mm")
+        if not needs_web and (self.web_height_mm is not None or self.web_thickness_mm is not None):
+            raise ValueError("shape 'flat' takes no web_height_mm / web_thickness_mm")
+        return self
+
+    @property
+    def flange_thickness_m(self) -> float:
+        return self.flange_thickness_mm * 1e-3
+
+    @property
+    def flange_width_m(self) -> float:
+        return self.flange_width_mm * 1e-3
+
+
+class PathSpec(_Strict):
+    """Pitch-catch path along the flange: both transducers on one line parallel to its length."""
+
+    transducer_spacing_mm: float = Field(gt=10.0, le=5000.0)
+    transmitter_position_mm: float = Field(ge=0.0, description="distance from the near flange end to the transmitter")
+    lateral_position_mm: float = Field(gt=0.0, description="distance from one flange edge to the transducer line")
+    flange_length_mm: float = Field(gt=0.0, le=20000.0)
+    transducer_diameter_mm: float = Field(default=7.0, gt=0.0, le=50.0)
+
+    @property
+    def spacing_m(self) -> float:
+        return self.transducer_spacing_mm * 1e-3
+
+    def end_distances_m(self) -> tuple[float, float]:
+        """(transmitter to near end, receiver to far end) [m]."""
+        far = self.flange_length_mm - self.transmitter_position_mm - self.transducer_spacing_mm
+        return self.transmitter_position_mm * 1e-3, far * 1e-3
+
+
+class ExcitationSpec(_Strict):
+    centre_frequency_khz: float = Field(gt=1.0, le=2000.0)
+    cycles: float = Field(ge=1.0, le=40.0)
+    window: Literal["hann", "gaussian", "tukey", "rect"] = "hann"
+
+    @property
+    def centre_frequency_hz(self) -> float:
+        return self.centre_frequency_khz * 1e3
+
+
+class AcquisitionSpec(_Strict):
+    sample_rate_mhz: float = Field(gt=0.01, le=1000.0)
+    record_length: int = Field(ge=256, le=1_048_576, description="samples per capture")
+    pretrigger_us: float = Field(default=0.0, ge=0.0)
+    amplitude_units: Literal["V", "mV", "counts"] = "V"
+    counts_scale_v: float | None = Field(default=None, gt=0.0, description="volts per count, when units are counts")
+    full_scale: float = Field(default=1.0, gt=0.0, description="ADC rail in amplitude_units")
+
+    @property
+    def sample_rate_hz(self) -> float:
+        return self.sample_rate_mhz * 1e6
+
+    @property
+    def pretrigger_s(self) -> float:
+        return self.pretrigger_us * 1e-6
+
+    @property
+    def duration_s(self) -> float:
+        return self.record_length / self.sample_rate_hz
+
+
+class EnvironmentSpec(_Strict):
+    reference_temperature_c: float = 20.0
+    min_temperature_c: float = -20.0
+    max_temperature_c: float = 60.0
+
+    @model_validator(mode="after")
+    def _order(self):
+        if not self.min_temperature_c < self.max_temperature_c:
+            raise ValueError(
+                f"min_temperature_c ({self.min_temperature_c}) must be below max_temperature_c ({self.max_temperature_c})"
+            )
+        return self
+
+
+class DomainSpec(_Strict):
+    """What the simulated campaign spans."""
+
+    max_loss_pct: tuple[float, float] = (0.0, 50.0)
+    patch_length_mm: tuple[float, float] = (5.0, 150.0)
+    shapes: tuple[Literal["flat", "pit", "rough"], ...] = ("flat", "pit", "rough")
+    sides: tuple[Literal["one", "two"], ...] = ("one", "two")
+    max_patches: int = Field(default=2, ge=1, le=8)
+    position_fraction: tuple[float, float] = (0.1, 0.9)
+    pristine_fraction: float = Field(default=0.1, ge=0.0, lt=1.0)
+    snr_db: tuple[float, float] = (20.0, 45.0)
+    coupling_db: tuple[float, float] = (-3.0, 3.0)
+    temperature_c: tuple[float, float] = (-10.0, 50.0)
+    jitter_ns: float = Field(default=5.0, ge=0.0)
+    attenuation_db_per_m: tuple[float, float] = (0.5, 3.0)
+    echo_reflection: tuple[float, float] = (0.05, 0.4)
+
+    _pair = field_validator(
+        "max_loss_pct", "patch_length_mm", "position_fraction", "snr_db", "coupling_db",
+        "temperature_c", "attenuation_db_per_m", "echo_reflection", mode="before",
+    )(lambda v: _range()(v))
+
+    @model_validator(mode="after")
+    def _bounds(self):
+        lo, hi = self.max_loss_pct
+        if lo < 0 or hi >= 90:
+            raise ValueError(f"max_loss_pct must lie within [0, 90); got [{lo}, {hi}]")
+        lo, hi = self.position_fraction
+        if lo < 0 or hi > 1:
+            raise ValueError(f"position_fraction must lie within [0, 1]; got [{lo}, {hi}]")
+        if self.patch_length_mm[0] <= 0:
+            raise ValueError(f"patch_length_mm must be positive; got {list(self.patch_length_mm)}")
+        if not self.shapes or not self.sides:
+            raise ValueError("shapes and sides must each list at least one entry")
+        return self
+
+
+class Family(_Strict):
+    """A validated stiffener-family definition (see module docstring)."""
+
+    schema_version: int = FAMILY_SCHEMA_VERSION
+    family: FamilyInfo
+    material: MaterialSpec
+    section: SectionSpec
+    path: PathSpec
+    excitation: ExcitationSpec
+    acquisition: AcquisitionSpec
+    environment: EnvironmentSpec = EnvironmentSpec()
+    domain: DomainSpec = DomainSpec()
+
+    @model_validator(mode="after")
+    def _consistency(self):
+        if self.schema_version != FAMILY_SCHEMA_VERSION:
+            raise ValueError(f"schema_version {self.schema_version} is not supported; this tool reads {FAMILY_SCHEMA_VERSION}")
+        p = self.path
+        if p.transmitter_position_mm + p.transducer_spacing_mm > p.flange_length_mm:
+            raise ValueError(
+                "path: transmitter_position_mm + transducer_spacing_mm "
+                f"({p.transmitter_position_mm + p.transducer_spacing_mm:g}) exceeds flange_length_mm ({p.flange_length_mm:g})"
+            )
+        if p.lateral_position_mm >= self.section.flange_width_mm:
+            raise ValueError(
+                f"path.lateral_position_mm ({p.lateral_position_mm:g}) must be inside the flange width "
+                f"({self.section.flange_width_mm:g} mm)"
+            )
+        nyquist_khz = self.acquisition.sample_rate_mhz * 1e3 / 2
+        if self.excitation.centre_frequency_khz * 3 > nyquist_khz:
+            raise ValueError(
+                f"acquisition.sample_rate_mhz ({self.acquisition.sample_rate_mhz:g}) is too low for a "
+                f"{self.excitation.centre_frequency_khz:g} kHz burst: need at least 6x the centre frequency"
+            )
+        lo, hi = self.domain.temperature_c
+        env = self.environment
+        if lo < env.min_temperature_c or hi > env.max_temperature_c:
+            raise ValueError(
+                f"domain.temperature_c [{lo:g}, {hi:g}] must lie inside the environment range "
+                f"[{env.min_temperature_c:g}, {env.max_temperature_c:g}] degC"
+            )
+        mat = self.material.build()
+        for t in (env.min_temperature_c, env.max_temperature_c):
+            mat.check_temperature(t)
+        return self
+
+    # -- conveniences ------------------------------------------------------------
+    @property
+    def name(self) -> str:
+        return self.family.name
+
+    def build_material(self) -> Material:
+        """The material at its reference temperature."""
+        return self.material.build()
+
+    @property
+    def nominal_thickness_m(self) -> float:
+        return self.section.flange_thickness_m
+
+    def normalised(self) -> dict[str, Any]:
+        """Plain, fully-defaulted dict (resolved material included) used for the fingerprint."""
+        data = self.model_dump(mode="json")
+        data["material"] = {"resolved": self.build_material().as_dict()}
+        data["family"].pop("description", None)
+        return data
+
+    @property
+    def fingerprint(self) -> str:
+        """SHA-256 (first 16 hex digits) of the normalised definition.
+
+        The description text is left out, so rewording it keeps the fingerprint.
+        """
+        blob = json.dumps(self.normalised(), sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(blob.encode()).hexdigest()[:16]
+
+
+def _format_errors(exc: ValidationError, where: str) -> str:
+    lines = []
+    for err in exc.errors():
+        loc = ".".join(str(x) for x in err["loc"]) or "(top level)"
+        msg = err["msg"]
+        if err["type"] == "extra_forbidden":
+            msg = "unknown key (not part of the family schema)"
+        got = err.get("input")
+        got_txt = "" if isinstance(got, dict) else f"; got {got!r}"
+        lines.append(f"{where}: {loc}: {msg}{got_txt}")
+    return "\n".join(lines)
+
+
+def family_from_mapping(data: dict[str, Any], *, where: str = "family") -> Family:
+    """Validate a parsed family definition; errors name the field, the value and the rule."""
+    try:
+        return Family.model_validate(data)
+    except ValidationError as exc:
+        raise ValueError(_format_errors(exc, where)) from None
+
+
+def load_family(path: str | Path) -> Family:
+    """Read and validate a family TOML file."""
+    p = Path(path)
+    try:
+        with p.open("rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise ValueError(f"family file {str(p)!r} does not exist.") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ValueError(f"family file {str(p)!r} is not valid TOML: {exc}.") from None
+    return family_from_mapping(data, where=str(p))

@@ -1,0 +1,5 @@
+import sys
+
+from waneguide_cli.main import main
+
+sys.exit(main())
