@@ -380,6 +380,27 @@ def _group_velocity(family, k, w, h, cl, ct):
         return -g_k / g_w
 
 
+def _polish(family, k, w, h, cl, ct, steps=2):
+    """Newton steps k <- k - G/G_k from the bracketed root, accepted only when tiny.
+
+    The bracketing already holds the root to ~1e-9 relative; Newton's quadratic convergence
+    takes it to round-off. A step larger than 1e-6 k (never expected) is refused. Returns
+    (k, c_g) with c_g = -G_k / G_w from the same derivative evaluation.
+    """
+    cg = np.full_like(k, np.nan)
+    for _ in range(steps):
+        g, g_k, g_w = _frequency_function(family, k, w, h, cl, ct, derivatives=True)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            step = g / g_k
+            cg = -g_k / g_w
+        ok = np.isfinite(step) & (np.abs(step) < 1e-6 * np.abs(k))
+        k = np.where(ok, k - np.where(ok, step, 0.0), k)
+    g, g_k, g_w = _frequency_function(family, k, w, h, cl, ct, derivatives=True)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cg = -g_k / g_w
+    return k, cg
+
+
 def _solve_family(family, material, w, h, cr, n_grid, max_refine=3):
     """Roots of one family at all points; returns lists (point, k, cg)."""
     cl, ct = material.cl_m_s, material.ct_m_s
@@ -395,7 +416,7 @@ def _solve_family(family, material, w, h, cr, n_grid, max_refine=3):
     out_p, out_k, out_cg = [], [], []
     for attempt in range(max_refine + 1):
         pi, k = _scan_roots(family, w[todo], h[todo], cl, ct, k_lo[todo], k_hi[todo], grid)
-        cg = _group_velocity(family, k, w[todo][pi], h[todo][pi], cl, ct)
+        k, cg = _polish(family, k, w[todo][pi], h[todo][pi], cl, ct)
         net = np.zeros(todo.size, dtype=int)
         np.add.at(net, pi, np.where(cg > 0, 1, -1))
         good = net == expected_net[todo]
@@ -573,7 +594,7 @@ def fundamental_dispersion(
                 break
             todo, grid = missing, grid * 4
         ok = np.isfinite(K[m])
-        CG[m, ok] = _group_velocity(family, K[m, ok], w[ok], h[ok], cl, ct)
+        K[m, ok], CG[m, ok] = _polish(family, K[m, ok], w[ok], h[ok], cl, ct)
         if not ok.all():
             warnings.warn(f"{family}0 root not found at {np.sum(~ok)} point(s).", RuntimeWarning, stacklevel=2)
     CP = w[None, :] / K
