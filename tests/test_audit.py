@@ -1,0 +1,230 @@
+"""Audit arithmetic on a small example computed by hand (numbers worked out in the comments).
+
+Sources of the formulas: Student-t interval for a mean (any statistics handbook;
+t_{0.975, 3} = 3.1824 from the t table, e.g. NIST/SEMATECH e-Handbook of Statistical
+Methods, table 1.3.6.7.2); Clopper and Pearson (1934) exact binomial interval, i.e.
+Beta quantiles (checked against scipy.stats.beta); the trapezoid rule for the mean
+thickness along the path.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from models.audit import (
+    AuditSettings,
+    audit_frames,
+    calibration_curve,
+    decide,
+    format_audit,
+    reading_targets,
+    residual_summary,
+    standardised_residuals,
+)
+from models.readings import read_readings
+
+NOMINAL_MM = 2.0
+PATH_MM = 300.0
+
+READINGS = """path_id,date,position_mm,remaining_thickness_mm,method,uncertainty_mm
+P1,2024-01-10,150,1.80,UT gauge,0.02
+P1,2024-02-10,150,1.60,UT gauge,
+P2,2024-01-12,100,1.90,UT gauge,0.02
+P2,2024-02-12,100,1.50,caliper,0.05
+P3,2024-02-12,100,1.50,caliper,0.05
+P1,2024-03-01,0,2.00,UT gauge,0.02
+P1,2024-03-01,100,1.80,UT gauge,0.02
+P1,2024-03-01,300,2.00,UT gauge,0.02
+P2,2024-03-01,350,1.90,UT gauge,0.02
+"""
+
+
+def _scores():
+    # capture estimates; band = [lower, upper]
+    return pd.DataFrame({
+        "content_hash": list("abcdefg"),
+        "path_id": ["P1", "P1", "P2", "P2", "P1", "P1", "P2"],
+        "captured_at": ["2024-01-11T00:00:00+00:00", "2024-02-09T12:00:00+00:00", "2024-01-12T06:00:00Z",
+                        "2024-02-14T00:00:00", "2024-03-03T00:00:00", "2024-04-30T00:00:00", "2024-03-02"],
+        "status": ["scored"] * 6 + ["rejected"],
+        "max_loss_pct": [12.0, 18.0, 9.0, 24.0, 11.0, 30.0, 50.0],
+        "max_loss_pct_lower": [8.0, 15.0, 7.0, 20.0, 9.0, 25.0, 40.0],
+        "max_loss_pct_upper": [16.0, 21.0, 11.0, 28.0, 13.0, 35.0, 60.0],
+        "mean_loss_pct": [3.0, 4.0, 1.0, 5.0, 4.0, 9.0, 9.0],
+        "mean_loss_pct_lower": [1.0, 2.0, 0.0, 3.0, 3.0, 8.0, 8.0],
+        "mean_loss_pct_upper": [5.0, 6.0, 2.0, 7.0, 6.0, 10.0, 10.0],
+        "in_family": [True] * 7,
+    })
+
+
+@pytest.fixture()
+def readings(tmp_path):
+    p = tmp_path / "readings.csv"
+    p.write_text(READINGS)
+    return read_readings(p)
+
+
+def test_targets_from_readings(readings):
+    surveys, kept, excluded = reading_targets(readings, nominal_thickness_mm=NOMINAL_MM, path_length_mm=PATH_MM)
+    # the reading at 350 mm lies beyond the 300 mm path
+    assert list(excluded["line"]) == [10]
+    s = surveys.set_index(["path_id", surveys["date"].dt.strftime("%Y-%m-%d")])
+    # max loss from the thinnest reading: 100 (1 - 1.8/2) = 10 %
+    assert s.loc[("P1", "2024-01-10"), "max_loss_pct"] == pytest.approx(10.0)
+    assert s.loc[("P1", "2024-01-10"), "u_max_loss_pct"] == pytest.approx(1.0)     # 100 * 0.02 / 2
+    assert np.isnan(s.loc[("P1", "2024-02-10"), "u_max_loss_pct"])                   # blank uncertainty
+    # survey of 2024-03-01 on P1: points (0, 2.0), (100, 1.8), (300, 2.0) span the whole path.
+    # trapezoid: [(2.0+1.8)/2 * 100 + (1.8+2.0)/2 * 200] / 300 = (190 + 380) / 300 = 1.9 mm -> 5 % mean loss
+    srv = s.loc[("P1", "2024-03-01")]
+    assert srv["n_readings"] == 3 and srv["max_loss_pct"] == pytest.approx(10.0)
+    assert srv["mean_loss_pct"] == pytest.approx(5.0, abs=1e-12)
+    # u(mean): weights w = (50, 150, 100)/300 of 0.02 mm each -> 0.02 sqrt(50^2+150^2+100^2)/300 = 0.012472 mm
+    assert srv["u_mean_loss_pct"] == pytest.approx(100 * 0.02 * np.sqrt(50**2 + 150**2 + 100**2) / 300 / 2.0)
+    # single-point surveys give no mean-loss target
+    assert surveys["mean_loss_pct"].notna().sum() == 1
+
+
+def test_hand_computed_audit(readings):
+    res = audit_frames(_scores(), readings, nominal_thickness_mm=NOMINAL_MM, path_length_mm=PATH_MM,
+                       coverage_nominal=0.9)
+    m = res.surveys
+    by = m.set_index(["path_id", m["date"].dt.strftime("%Y-%m-%d")])
+    # nearest capture within 7 days: P1 01-10 -> a (+1 d); P1 02-10 -> b (-0.5 d); P2 01-12 -> c (+0.25 d);
+    # P2 02-12 -> d (+2 d); P1 03-01 -> e (+2 d); P3 -> nothing; the rejected P2 capture g is never used.
+    assert by.loc[("P1", "2024-01-10"), "est_content_hash"] == "a"
+    assert by.loc[("P1", "2024-02-10"), "est_content_hash"] == "b"
+    assert by.loc[("P2", "2024-01-12"), "est_content_hash"] == "c"
+    assert by.loc[("P2", "2024-02-12"), "est_content_hash"] == "d"
+    assert by.loc[("P1", "2024-03-01"), "est_content_hash"] == "e"
+    assert by.loc[("P1", "2024-02-10"), "dt_days"] == pytest.approx(-0.5)
+    assert not by.loc[("P3", "2024-02-12"), "matched"]
+    assert "no scored capture of path P3" in by.loc[("P3", "2024-02-12"), "match_reason"]
+
+    sm = res.summaries["max_loss_pct"]
+    # truths 10, 20, 5, 25, 10; estimates 12, 18, 9, 24, 11 -> residuals 2, -2, 4, -1, 1
+    r = np.array([2.0, -2.0, 4.0, -1.0, 1.0])
+    assert sm["n"] == 5
+    assert sm["bias"] == pytest.approx(0.8)                       # 4 / 5
+    sd = np.sqrt(np.sum((r - 0.8) ** 2) / 4)                      # = sqrt(22.8 / 4) = 2.3875
+    assert sm["sd"] == pytest.approx(2.387467, rel=1e-6) and sd == pytest.approx(sm["sd"])
+    # t_{0.975, 4} = 2.7764 (t table); half-width 2.7764 * 2.3875 / sqrt 5 = 2.9644
+    assert sm["bias_lower"] == pytest.approx(0.8 - 2.9644, abs=2e-4)
+    assert sm["bias_upper"] == pytest.approx(0.8 + 2.9644, abs=2e-4)
+    assert sm["rmse"] == pytest.approx(np.sqrt(26 / 5))           # sum r^2 = 4+4+16+1+1 = 26
+    # inside the band: 10 in [8,16] yes, 20 in [15,21] yes, 5 in [7,11] no, 25 in [20,28] yes, 10 in [9,13] yes
+    assert (sm["covered"], sm["coverage"]) == (4, 0.8)
+    # Clopper-Pearson 95 %: [Beta(0.025; 4, 2), Beta(0.975; 5, 1)] = [0.2836, 0.9949]
+    assert sm["coverage_lower"] == pytest.approx(stats.beta.ppf(0.025, 4, 2), rel=1e-9)
+    assert sm["coverage_upper"] == pytest.approx(stats.beta.ppf(0.975, 5, 1), rel=1e-9)
+    assert sm["coverage_lower"] == pytest.approx(0.2836, abs=1e-4)
+
+    mean = res.summaries["mean_loss_pct"]
+    assert mean["n"] == 1 and mean["bias"] == pytest.approx(4.0 - 5.0)   # capture e says 4 %, survey 5 %
+    assert res.verdict == "in control"
+    assert any("fewer than 3" in n for n in res.notes)
+    # unmatched list: P3 survey and the off-path reading, each with its reason
+    reasons = " | ".join(res.unmatched["reason"])
+    assert "P3" in reasons and "outside the path" in reasons
+    text = format_audit(res)
+    assert "IN CONTROL" in text and "Decision support only" in text
+
+
+def test_t_interval_small_case():
+    # n = 4, residuals 2, -2, 4, -1: mean 0.75, s = 2.7538; t_{0.975,3} = 3.1824 -> [-3.632, 5.132]
+    sm = residual_summary([12, 18, 9, 24], [8, 15, 7, 20], [16, 21, 11, 28], [10, 20, 5, 25],
+                          coverage_nominal=0.9)
+    assert sm["bias_lower"] == pytest.approx(0.75 - 3.1824 * 2.7538 / 2, abs=1e-3)
+    assert sm["bias_upper"] == pytest.approx(0.75 + 3.1824 * 2.7538 / 2, abs=1e-3)
+
+
+def test_standardised_residuals_and_calibration():
+    z90 = stats.norm.ppf(0.95)                       # 1.6449
+    # estimate 10, band [8, 14]; truth 13 lies on the upper side: s = 4 / 1.6449; u = 0.0
+    z = standardised_residuals([10.0], [8.0], [14.0], [13.0], [np.nan], coverage_nominal=0.9)
+    assert z[0] == pytest.approx(-3.0 / (4.0 / z90))
+    # with a reading uncertainty of 1 %: sqrt(s^2 + 1)
+    z = standardised_residuals([10.0], [8.0], [14.0], [13.0], [1.0], coverage_nominal=0.9)
+    assert z[0] == pytest.approx(-3.0 / np.hypot(4.0 / z90, 1.0))
+    # calibration: at the nominal level the curve is the plain band coverage
+    c = calibration_curve([10, 10, 10], [8, 8, 8], [14, 14, 14], [9, 13.9, 16], coverage_nominal=0.9)
+    assert c.set_index("level").loc[0.9, "empirical"] == pytest.approx(2 / 3)
+    # at 50 %: sides scaled by z(0.75)/z(0.95) = 0.6745/1.6449 = 0.41: 9 -> |1| <= 0.82 no; 13.9 -> 3.9 <= 1.64 no
+    assert c.set_index("level").loc[0.5, "empirical"] == pytest.approx(0.0)
+
+
+def test_rules_fire_as_written():
+    s = AuditSettings()
+    biased = residual_summary(np.arange(10) + 5.0, np.arange(10) + 3.0, np.arange(10) + 7.0,
+                              np.arange(10) + 0.0, coverage_nominal=0.9)
+    verdict, reasons, _ = decide({"max_loss_pct": biased}, {}, None, oof_share_observed=0.0, settings=s)
+    assert verdict == "recalibrate"
+    assert any("bias +5.00" in r for r in reasons) and any("below nominal 90%" in r for r in reasons)
+    ft = pd.DataFrame({"feature": ["f"], "drifted": [True], "psi": [0.6], "q_value": [1e-6], "outside_share": [0.3]})
+    verdict, reasons, _ = decide({"max_loss_pct": biased}, {}, ft, oof_share_observed=0.0, settings=s)
+    assert verdict == "retrain" and "left the training domain" in reasons[0]
+    verdict, _, notes = decide({}, {}, ft.assign(outside_share=0.0), oof_share_observed=0.0, settings=s)
+    assert verdict == "in control" and "stay within its range" in notes[0]
+    verdict, reasons, _ = decide({}, {}, None, oof_share_observed=0.5, settings=s)
+    assert verdict == "retrain" and "out of family" in reasons[0]
+
+
+def test_drift_alarm_in_audit(tmp_path):
+    # 30 monthly surveys on one path; from survey 15 on the model underestimates by ~3 sigma
+    rng = np.random.default_rng(2)
+    dates = pd.date_range("2022-01-01", periods=30, freq="30D", tz="UTC")
+    truth = np.linspace(0, 20, 30)
+    est = truth + rng.normal(0, 1.0, 30)
+    est[15:] -= 5.0
+    half = 1.6449 * 1.0        # 90 % band of a unit-sigma Gaussian error
+    scores = pd.DataFrame({
+        "content_hash": [f"h{i}" for i in range(30)], "path_id": "P1",
+        "captured_at": [d.isoformat() for d in dates], "status": "scored",
+        "max_loss_pct": est, "max_loss_pct_lower": est - half, "max_loss_pct_upper": est + half,
+        "mean_loss_pct": est / 2, "mean_loss_pct_lower": est / 2 - 1, "mean_loss_pct_upper": est / 2 + 1,
+        "in_family": True,
+    })
+    lines = ["path_id,date,position_mm,remaining_thickness_mm,method"]
+    lines += [f"P1,{d.date()},150,{2.0 * (1 - t / 100):.6f},UT gauge" for d, t in zip(dates, truth)]
+    p = tmp_path / "r.csv"
+    p.write_text("\n".join(lines) + "\n")
+    res = audit_frames(scores, read_readings(p), nominal_thickness_mm=2.0, path_length_mm=300.0,
+                       coverage_nominal=0.9)
+    d = res.drift["max_loss_pct"]
+    assert d["result"].alarm and d["result"].direction == "down"
+    assert 15 <= d["result"].alarm_index <= 18      # Siegmund ARL at a 5-sigma step ~ 1.2 readings
+    assert res.verdict == "recalibrate"
+
+
+def test_no_match_is_a_clear_error(readings):
+    sc = _scores().assign(path_id="Q9")
+    with pytest.raises(ValueError, match="no survey matched a scored capture within 7 days"):
+        audit_frames(sc, readings, nominal_thickness_mm=2.0, path_length_mm=300.0, coverage_nominal=0.9)
+
+
+@pytest.mark.parametrize("body, needle", [
+    ("path_id,date,position_mm,method\nP1,2024-01-01,1,UT\n", "missing column\\(s\\) remaining_thickness_mm"),
+    ("path_id,date,position_mm,remaining_thickness_mm,method\nP1,2024-13-45,1,1.9,UT\n", "line 2, column date"),
+    ("path_id,date,position_mm,remaining_thickness_mm,method\nP1,2024-01-01,1,1.9,UT\nP1,2024-01-01,x,1.9,UT\n",
+     "line 3, column position_mm: must be a number >= 0"),
+    ("path_id,date,position_mm,remaining_thickness_mm,method\nP1,2024-01-01,1,-1.9,UT\n",
+     "column remaining_thickness_mm: must be a positive number"),
+    ("path_id,date,position_mm,remaining_thickness_mm,method\n,2024-01-01,1,1.9,UT\n", "column path_id"),
+    ("path_id,date,position_mm,remaining_thickness_mm,method,uncertainty_mm\nP1,2024-01-01,1,1.9,UT,-0.1\n",
+     "column uncertainty_mm"),
+    ("", "the readings file is empty"),
+])
+def test_readings_errors_name_file_line_column(tmp_path, body, needle):
+    p = tmp_path / "bad.csv"
+    p.write_text(body)
+    with pytest.raises(ValueError, match=needle) as exc:
+        read_readings(p)
+    assert "bad.csv" in str(exc.value)
+
+
+def test_reading_in_another_unit_is_refused(readings):
+    r = readings.copy()
+    r.loc[0, "remaining_thickness_mm"] = 1800.0     # micrometres by mistake
+    with pytest.raises(ValueError, match="line 2: remaining_thickness_mm 1800"):
+        reading_targets(r, nominal_thickness_mm=2.0, path_length_mm=300.0)
