@@ -1,0 +1,184 @@
+"""HTML report: one self-contained file whose numbers are the database's.
+
+Self-contained is checked by parsing the HTML (Python's html.parser): every ``src`` and
+``href`` is a ``data:`` URI or an in-page anchor and no ``http(s)://``, ``//host`` or
+``url(...)`` appears anywhere. Plots must be real PNGs (signature per the PNG spec,
+ISO/IEC 15948 sec. 5.2) that are not blank.
+"""
+from __future__ import annotations
+
+import base64
+import io
+import re
+from html.parser import HTMLParser
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from models.audit import audit_frames
+from models.history import History
+from models.readings import read_readings
+from models.report import write_report
+
+MODEL = {"model_version": "test-v1", "family_name": "demo-fb2", "family_fingerprint": "0123456789abcdef",
+         "family_invented": True, "coverage_nominal": 0.9, "calibration_source": "simulated",
+         "nominal_thickness_mm": 2.0, "path_length_mm": 300.0, "material": "al-2024-t3"}
+
+
+def build_example(tmp_path, *, n_weeks=20):
+    """A small history (3 paths, weekly captures, one growing patch) plus readings and an audit.
+
+    Invented numbers for a report test only; the audit arithmetic itself is checked in test_audit.py.
+    """
+    rng = np.random.default_rng(4)
+    db = f"sqlite:///{tmp_path / 'hist.db'}"
+    hist = History(db)
+    dates = pd.date_range("2024-01-01", periods=n_weeks, freq="7D", tz="UTC")
+    rows = []
+    for p, growth in (("P01", 0.0), ("P02", 1.0), ("P03", 0.0)):
+        for i, d in enumerate(dates):
+            true = growth * i
+            est = true + rng.normal(0, 1.0)
+            oof = p == "P03" and i == 5
+            rows.append({
+                "content_hash": f"{p}-{i}", "model_version": MODEL["model_version"], "file": f"{p}_{i:03d}.npz",
+                "path_id": p, "captured_at": d.isoformat(), "temperature_c": 20 + 10 * np.sin(i / 3),
+                "status": "scored", "max_loss_pct": est, "max_loss_pct_lower": est - 3, "max_loss_pct_upper": est + 3,
+                "mean_loss_pct": est / 3, "mean_loss_pct_lower": est / 3 - 1, "mean_loss_pct_upper": est / 3 + 1,
+                "exceed_probability": float(est > 15), "limit_pct": 15.0, "in_family": not oof,
+                "mismatch_p_value": 0.001 if oof else 0.5,
+                "mismatch_reasons": "S0 arrival outside the training range <&>" if oof else "",
+                "quality_flags": "",
+            })
+    rows.append({"content_hash": "rej", "model_version": MODEL["model_version"], "file": "P01_bad.npz",
+                 "path_id": "P01", "captured_at": dates[3].isoformat(), "status": "rejected",
+                 "quality_flags": "clipped", "mismatch_reasons": "capture clipped at the ADC rail"})
+    hist.add_scores(rows)
+    lines = ["path_id,date,position_mm,remaining_thickness_mm,method,uncertainty_mm"]
+    for k in (4, 10, 16):
+        d = dates[k].date()
+        lines.append(f"P02,{d},150,{2.0 * (1 - k / 100):.4f},UT gauge,0.02")
+        lines.append(f"P01,{d},150,2.0,UT gauge,0.02")
+    lines.append(f"P09,{dates[4].date()},150,2.0,UT gauge,0.02")
+    rp = tmp_path / "readings.csv"
+    rp.write_text("\n".join(lines) + "\n")
+    scores = hist.scores(model_version=MODEL["model_version"])
+    ref = pd.DataFrame({"f_a": rng.normal(0, 1, 300), "f_b": rng.normal(5, 1, 300)})
+    recent = pd.DataFrame({"f_a": rng.normal(0, 1, 60), "f_b": rng.normal(6.5, 1, 60)})
+    audit = audit_frames(scores, read_readings(rp), nominal_thickness_mm=2.0, path_length_mm=300.0,
+                         coverage_nominal=0.9, reference_features=ref, recent_features=recent, model=MODEL)
+    out = write_report(tmp_path / "report.html", scores=scores, audit=audit, model=MODEL)
+    return {"db": db, "history": hist, "scores": scores, "audit": audit, "report": out}
+
+
+class _Collector(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.urls: list[tuple[str, str, str]] = []
+        self.images: list[dict] = []
+        self.keyed: dict[str, str] = {}
+        self._key = None
+        self.tags: set[str] = set()
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        self.tags.add(tag)
+        for name in ("src", "href", "action", "poster", "srcset", "data"):
+            if name in a and a[name] is not None:
+                self.urls.append((tag, name, a[name]))
+        if tag == "img":
+            self.images.append(a)
+        k = a.get("data-key") or a.get("id")
+        self._key = k
+
+    def handle_data(self, data):
+        if self._key is not None:
+            self.keyed[self._key] = self.keyed.get(self._key, "") + data
+
+    def handle_endtag(self, tag):
+        self._key = None
+
+
+def parse_report(text):
+    c = _Collector()
+    c.feed(text)
+    return c
+
+
+def png_pixels(data: bytes) -> np.ndarray:
+    import matplotlib.image as mpimg
+
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"
+    return mpimg.imread(io.BytesIO(data), format="png")
+
+
+def assert_no_external_references(text: str, parsed: _Collector) -> None:
+    for tag, attr, url in parsed.urls:
+        assert url.startswith("data:") or url.startswith("#"), f"<{tag} {attr}> points outside: {url[:80]}"
+    low = text.lower()
+    assert "http://" not in low and "https://" not in low
+    assert not re.search(r"""(src|href)\s*=\s*["']?//""", low)
+    assert "url(" not in low and "@import" not in low
+    assert not ({"script", "link", "iframe", "object", "embed"} & parsed.tags)
+
+
+def test_report_is_self_contained_and_plots_are_not_blank(tmp_path):
+    ex = build_example(tmp_path)
+    text = ex["report"].read_text(encoding="utf-8")
+    parsed = parse_report(text)
+    assert_no_external_references(text, parsed)
+    ids = {im.get("id") for im in parsed.images}
+    assert {"trend-P01", "trend-P02", "trend-P03", "calibration", "drift", "feature-drift", "scatter"} <= ids
+    for im in parsed.images:
+        data = base64.b64decode(im["src"].split(",", 1)[1])
+        px = png_pixels(data)
+        assert px.shape[0] > 200 and px.shape[1] > 300
+        # not blank: a plot has lines and text, so its pixels vary (a blank canvas has std 0)
+        assert px[..., :3].std() > 0.05
+        assert im.get("alt")
+
+
+def test_report_numbers_match_the_database(tmp_path):
+    ex = build_example(tmp_path)
+    parsed = parse_report(ex["report"].read_text(encoding="utf-8"))
+    db = History(ex["db"]).scores(model_version=MODEL["model_version"])
+    k = parsed.keyed
+    assert int(k["n_captures"]) == len(db) == 61
+    assert int(k["n_rejected"]) == int((db["status"] == "rejected").sum()) == 1
+    assert int(k["n_out_of_family"]) == int((db["in_family"] == False).sum()) == 1  # noqa: E712
+    assert int(k["n_paths"]) == 3
+    last = db[db["status"] == "scored"].groupby("path_id").tail(1).set_index("path_id")
+    for pid, row in last.iterrows():
+        assert float(k[f"latest:{pid}:max_loss_pct"]) == pytest.approx(row["max_loss_pct"], abs=0.005)
+        assert k[f"latest:{pid}:captured_at"] == row["captured_at"]
+    s = ex["audit"].summaries["max_loss_pct"]
+    assert float(k["residual:max_loss_pct:bias"]) == pytest.approx(s["bias"], abs=0.005)
+    assert int(k["residual:max_loss_pct:n"]) == s["n"] == 6
+    assert k["verdict"] == ex["audit"].verdict
+    assert int(k["n_matched"]) == 6 and int(k["n_surveys"]) == 7
+    # family identity and the caution are on the page
+    assert k["model:family fingerprint"] == MODEL["family_fingerprint"]
+    from waneguide_cli.main import CAUTION
+
+    assert k["caution"] == CAUTION
+
+
+def test_report_escapes_text_and_lists_mismatches(tmp_path):
+    ex = build_example(tmp_path)
+    text = ex["report"].read_text(encoding="utf-8")
+    assert "S0 arrival outside the training range &lt;&amp;&gt;" in text
+    assert "capture clipped at the ADC rail" in text
+    assert "no scored capture of path P09" in text
+    assert "INVENTED" in text
+
+
+def test_scores_only_report(tmp_path):
+    ex = build_example(tmp_path)
+    out = write_report(tmp_path / "scores.html", scores=ex["scores"], model=MODEL)
+    text = out.read_text(encoding="utf-8")
+    parsed = parse_report(text)
+    assert_no_external_references(text, parsed)
+    assert "verdict" not in parsed.keyed and len(parsed.images) == 3
+    assert "limit 15 %" not in text  # legends are inside the PNG, not the HTML
+    assert parsed.keyed["model:limit for exceedance [% of nominal]"] == "15.0"
