@@ -11,6 +11,23 @@ Units at this edge follow the trade (mm, kHz, MHz, us, degC); every ``*_m``,
 Until cross-section dispersion exists the flange is treated as a free plate of
 the flange thickness: the web and the flange width only set edge/end echo
 delays. The model card and the README repeat this.
+
+Sections of a family file (all units at the edge):
+
+``[family]``      name, description, ``invented`` flag
+``[material]``    ``builtin = NAME`` or inline constants
+``[section]``     shape (flat, T, L, Z), flange thickness and width, web height and thickness
+``[path]``        transducer spacing, transmitter position from the near end, lateral
+                  position from one edge, flange length, transducer diameter
+``[excitation]``  tone-burst centre frequency, cycles, window
+``[transducer]``  (optional) resonance, quality factor, relative S0/A0 excitability,
+                  aperture model of the bonded discs
+``[acquisition]`` sample rate, record length, pretrigger, amplitude units, ADC full scale
+``[environment]`` reference temperature and the operating range
+``[domain]``      what a simulated campaign spans: loss depth, patch length, shapes,
+                  sides, number of patches, position along the path, SNR, coupling,
+                  temperature, jitter, attenuation, echo strength, coherent noise,
+                  thinning states per specimen, forward-model segment length
 """
 from __future__ import annotations
 
@@ -26,6 +43,7 @@ from .materials import Material, get_material, material_from_mapping
 
 __all__ = [
     "Family",
+    "TransducerSpec",
     "load_family",
     "family_from_mapping",
     "FAMILY_SCHEMA_VERSION",
@@ -134,6 +152,31 @@ class ExcitationSpec(_Strict):
         return self.centre_frequency_khz * 1e3
 
 
+class TransducerSpec(_Strict):
+    """Bonded piezo discs at both ends of the path (used by the forward model).
+
+    Each disc is a second-order resonator ``H(f) = 1 / (1 + i Q (f/f_r - f_r/f))``
+    (transmit and receive, so ``H^2``); ``aperture = "disc"`` adds the in-plane
+    aperture factor ``2 J1(k a) / (k a)`` of a uniform circular disc of radius ``a``
+    (path.transducer_diameter_mm / 2), once per disc. The excitabilities are
+    relative amplitudes of S0 and A0 (an empirical pair until a bonded-transducer
+    model exists).
+    """
+
+    resonance_khz: float | None = Field(default=None, gt=1.0, le=5000.0,
+                                        description="disc resonance; default the excitation centre frequency")
+    quality_factor: float = Field(default=1.5, gt=0.2, le=50.0)
+    s0_excitability: float = Field(default=1.0, ge=0.0, le=100.0)
+    a0_excitability: float = Field(default=1.0, ge=0.0, le=100.0)
+    aperture: Literal["disc", "none"] = "disc"
+
+    @model_validator(mode="after")
+    def _some_mode(self):
+        if self.s0_excitability == 0 and self.a0_excitability == 0:
+            raise ValueError("s0_excitability and a0_excitability are both 0: no mode would be excited")
+        return self
+
+
 class AcquisitionSpec(_Strict):
     sample_rate_mhz: float = Field(gt=0.01, le=1000.0)
     record_length: int = Field(ge=256, le=1_048_576, description="samples per capture")
@@ -185,10 +228,20 @@ class DomainSpec(_Strict):
     jitter_ns: float = Field(default=5.0, ge=0.0)
     attenuation_db_per_m: tuple[float, float] = (0.5, 3.0)
     echo_reflection: tuple[float, float] = (0.05, 0.4)
+    coupling_drift_db: tuple[float, float] = Field(
+        default=(-1.0, 1.0), description="per-transducer gain change between baseline and capture")
+    crosstalk_db: tuple[float, float] = Field(
+        default=(-50.0, -30.0), description="electrical crosstalk at t = 0, re the pristine direct-arrival peak")
+    ringing_db: tuple[float, float] = Field(
+        default=(-55.0, -35.0), description="low-level ringing after the trigger, re the pristine direct-arrival peak")
+    states_per_specimen: int = Field(
+        default=4, ge=1, le=64, description="thinning states simulated on one specimen (same path, coupling, baseline)")
+    segment_mm: float = Field(default=1.0, gt=0.05, le=10.0, description="forward-model segment length along the path")
 
     _pair = field_validator(
         "max_loss_pct", "patch_length_mm", "position_fraction", "snr_db", "coupling_db",
-        "temperature_c", "attenuation_db_per_m", "echo_reflection", mode="before",
+        "temperature_c", "attenuation_db_per_m", "echo_reflection", "coupling_drift_db",
+        "crosstalk_db", "ringing_db", mode="before",
     )(lambda v: _range()(v))
 
     @model_validator(mode="after")
@@ -203,6 +256,11 @@ class DomainSpec(_Strict):
             raise ValueError(f"patch_length_mm must be positive; got {list(self.patch_length_mm)}")
         if not self.shapes or not self.sides:
             raise ValueError("shapes and sides must each list at least one entry")
+        if self.attenuation_db_per_m[0] < 0:
+            raise ValueError(f"attenuation_db_per_m must not be negative; got {list(self.attenuation_db_per_m)}")
+        lo, hi = self.echo_reflection
+        if lo < 0 or hi > 1:
+            raise ValueError(f"echo_reflection must lie within [0, 1]; got [{lo}, {hi}]")
         return self
 
 
@@ -215,6 +273,7 @@ class Family(_Strict):
     section: SectionSpec
     path: PathSpec
     excitation: ExcitationSpec
+    transducer: TransducerSpec = TransducerSpec()
     acquisition: AcquisitionSpec
     environment: EnvironmentSpec = EnvironmentSpec()
     domain: DomainSpec = DomainSpec()
@@ -250,6 +309,14 @@ class Family(_Strict):
         mat = self.material.build()
         for t in (env.min_temperature_c, env.max_temperature_c):
             mat.check_temperature(t)
+        if self.domain.segment_mm > p.transducer_spacing_mm / 4:
+            raise ValueError(
+                f"domain.segment_mm ({self.domain.segment_mm:g}) must be at most a quarter of "
+                f"path.transducer_spacing_mm ({p.transducer_spacing_mm:g})"
+            )
+        acq = self.acquisition
+        if acq.amplitude_units == "counts" and acq.counts_scale_v is None:
+            raise ValueError("acquisition.counts_scale_v is required when amplitude_units = 'counts'")
         return self
 
     # -- conveniences ------------------------------------------------------------
@@ -264,6 +331,21 @@ class Family(_Strict):
     @property
     def nominal_thickness_m(self) -> float:
         return self.section.flange_thickness_m
+
+    @property
+    def full_scale_v(self) -> float:
+        """ADC rail in volts."""
+        acq = self.acquisition
+        if acq.amplitude_units == "V":
+            return acq.full_scale
+        if acq.amplitude_units == "mV":
+            return acq.full_scale * 1e-3
+        return acq.full_scale * float(acq.counts_scale_v)
+
+    def edge_distances_m(self) -> tuple[float, float]:
+        """Lateral distances from the transducer line to the two flange edges [m]."""
+        lat = self.path.lateral_position_mm
+        return lat * 1e-3, (self.section.flange_width_mm - lat) * 1e-3
 
     def normalised(self) -> dict[str, Any]:
         """Plain, fully-defaulted dict (resolved material included) used for the fingerprint."""
