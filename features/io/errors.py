@@ -1,0 +1,66 @@
+"""Named errors of the capture readers.
+
+Every error is a :class:`ValueError` (so the CLI turns it into one line on stderr)
+and names the file, the field or part at fault, the rule, and what was received.
+Tests and callers can catch the specific class.
+"""
+from __future__ import annotations
+
+__all__ = [
+    "CaptureFileError",
+    "UnsupportedFormatError",
+    "CorruptFileError",
+    "MissingFieldError",
+    "InvalidFieldError",
+    "UnknownUnitsError",
+    "TimeAxisError",
+    "EmptyDataError",
+]
+
+
+class CaptureFileError(ValueError):
+    """Base class: a capture file that cannot be read as documented in docs/capture-format.md."""
+
+    code = "capture_file_error"
+
+
+class UnsupportedFormatError(CaptureFileError):
+    """The file suffix is not one of .csv, .mat, .h5, .hdf5, .npz."""
+
+    code = "unsupported_format"
+
+
+class CorruptFileError(CaptureFileError):
+    """The container itself cannot be parsed (not a MAT/HDF5/NPZ file, broken CSV)."""
+
+    code = "corrupt_file"
+
+
+class MissingFieldError(CaptureFileError):
+    """A required metadata key or data array is absent."""
+
+    code = "missing_field"
+
+
+class InvalidFieldError(CaptureFileError):
+    """A metadata value has the wrong type or lies outside its accepted range."""
+
+    code = "invalid_field"
+
+
+class UnknownUnitsError(CaptureFileError):
+    """``units`` is not V, mV or counts, or counts come without ``counts_scale_v``."""
+
+    code = "unknown_units"
+
+
+class TimeAxisError(CaptureFileError):
+    """The time column is not uniformly sampled or disagrees with the header."""
+
+    code = "time_axis"
+
+
+class EmptyDataError(CaptureFileError):
+    """The file holds no samples, or the amplitude is not a 1-D numeric array."""
+
+    code = "empty_data"
