@@ -290,7 +290,8 @@ class ForwardModel:
         e, s = self.temperature_factors(temp)
         scale = e / s  # thickness and length scale on the reference table; k picks up 1/s too
         G = tb.thickness_grid_m.size
-        # linear-in-ln(t) weights onto the grid, segment length dx * e / s folded in
+        # linear-in-ln(t) weights onto the grid (lookup at t e / s), segment length dx * e folded in;
+        # Phi = sum k_ref(w, t e / s) / s * dx e
         u = (np.log(thick * scale[:, None]) - tb.ln_t0) / tb.dln
         if u.min() < 0 or u.max() > G - 1:
             lo, hi = tb.thickness_grid_m[0], tb.thickness_grid_m[-1]
@@ -300,18 +301,18 @@ class ForwardModel:
             )
         i0 = np.minimum(np.floor(u).astype(np.int64), G - 2)
         w = u - i0
-        dx = self.segment_m * scale[:, None]
+        dx = self.segment_m * e[:, None]  # segment length at temperature
         rows = np.repeat(np.arange(n, dtype=np.int64) * G, n_seg).reshape(n, n_seg)
         W = np.bincount((rows + i0).ravel(), weights=(dx * (1 - w)).ravel(), minlength=n * G)
         W += np.bincount((rows + i0 + 1).ravel(), weights=(dx * w).ravel(), minlength=n * G)
         W = W.reshape(n, G)
-        # nominal-thickness weights for one metre (the extra end-echo legs)
+        # nominal-thickness weights for one reference metre (the extra end-echo legs)
         un = (np.log(self.nominal_thickness_m * scale) - tb.ln_t0) / tb.dln
         jn = np.minimum(np.floor(un).astype(np.int64), G - 2)
         wn = un - jn
         Wn = np.zeros((n, G))
-        Wn[np.arange(n), jn] = (1 - wn) * scale
-        Wn[np.arange(n), jn + 1] += wn * scale
+        Wn[np.arange(n), jn] = (1 - wn) * e
+        Wn[np.arange(n), jn + 1] += wn * e
 
         f = tb.freq_hz
         omega = 2 * np.pi * f
