@@ -7,7 +7,7 @@ Four estimators, each with its own error behaviour:
   the peak, linear interpolation between samples (robust to the tail of a dispersed packet);
 * **cross-correlation** against a reference (the baseline), peak refined either by a
   parabola through three correlation samples or by the slope of the cross-spectrum
-  phase across the excitation band (a group-delay estimate, Knapp & Carter 1976,
+  phase across the excitation band (generalised cross-correlation, Knapp & Carter 1976,
   IEEE Trans. ASSP 24(4), 320, doi:10.1109/TASSP.1976.1162830);
 * **phase delay at the centre frequency** -- the cross-spectrum phase at f0 divided by
   2 pi f0, resolved to the 2 pi branch nearest a coarse delay.
@@ -41,30 +41,76 @@ def _rows(x) -> np.ndarray:
     return np.atleast_2d(np.asarray(x, dtype=float))
 
 
-def envelope_peak_index(envelope: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(fractional index, value) of each row's envelope maximum, parabola-refined."""
+def envelope_peak_index(envelope: np.ndarray, *, half_width: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """(fractional index, value) of each row's envelope maximum.
+
+    Without ``half_width``: parabola through the maximum and its two neighbours.
+    With it: least-squares parabola over ``2 half_width + 1`` samples around the
+    maximum, re-centred once on the vertex -- a broad envelope peak is flat over
+    many samples, so three points let noise move the vertex by whole samples,
+    while the wide fit averages it out.
+    """
     env = _rows(envelope)
-    return parabolic_peak(env, np.argmax(env, axis=-1))
+    ipk = np.argmax(env, axis=-1)
+    if not half_width:
+        return parabolic_peak(env, ipk)
+    n, m = env.shape
+    K = int(half_width)
+    u = np.arange(-K, K + 1, dtype=float)
+    design = np.stack([np.ones_like(u), u, u * u], axis=1)
+    pinv = np.linalg.pinv(design)  # (3, 2K+1)
+    rows = np.arange(n)[:, None]
+    centre = ipk.astype(float)
+    for _ in range(2):
+        c = np.clip(np.rint(centre).astype(int), K, m - 1 - K)
+        seg = env[rows, c[:, None] + u.astype(int)[None, :]]
+        a0, a1, a2 = pinv @ seg.T
+        with np.errstate(divide="ignore", invalid="ignore"):
+            off = np.where(a2 < 0, -a1 / (2 * a2), 0.0)
+        off = np.clip(off, -K, K)
+        centre = c + off
+        value = a0 + a1 * off + a2 * off**2
+    return centre, value
 
 
-def threshold_crossing_index(envelope: np.ndarray, fraction: float = 0.5, *, peak_index=None) -> np.ndarray:
+def threshold_crossing_index(envelope: np.ndarray, fraction: float = 0.5, *, peak_index=None,
+                             peak_value=None, fit_half_width: int = 0) -> np.ndarray:
     """Fractional index where each row's envelope last rises through ``fraction * max`` before its peak.
 
-    NaN when the envelope never falls below the threshold before the peak.
+    ``peak_value`` (default: the sample maximum) sets the threshold. With
+    ``fit_half_width = K > 0`` a least-squares line over the 2K + 1 samples around the
+    crossing replaces the two-sample interpolation: the rising edge of a smooth packet
+    is close to straight there (for a Hann envelope sin^2 the 50 % point is its
+    inflection), and the fit averages the noise. NaN when the envelope never falls
+    below the threshold before the peak.
     """
     if not 0.0 < fraction < 1.0:
         raise ValueError(f"fraction must lie in (0, 1); got {fraction!r}.")
     env = _rows(envelope)
     n, m = env.shape
+    rows = np.arange(n)
     ipk = np.argmax(env, axis=-1) if peak_index is None else np.asarray(peak_index, dtype=int).reshape(-1)
-    thr = fraction * env[np.arange(n), ipk]
+    top = env[rows, ipk] if peak_value is None else np.asarray(peak_value, dtype=float).reshape(-1)
+    thr = fraction * top
     j = np.arange(m)[None, :]
     below = (env < thr[:, None]) & (j < ipk[:, None])
     last = np.where(below, j, -1).max(axis=-1)
     ok = last >= 0
     lo = np.clip(last, 0, m - 2)
-    e0 = env[np.arange(n), lo]
-    e1 = env[np.arange(n), lo + 1]
+    if fit_half_width:
+        K = int(fit_half_width)
+        u = np.arange(-K, K + 2, dtype=float)  # samples lo-K .. lo+K+1, centred between lo and lo+1
+        c = np.clip(lo, K, m - 2 - K)
+        seg = env[rows[:, None], c[:, None] + u.astype(int)[None, :]]
+        um = u.mean()
+        slope = ((u - um) * (seg - seg.mean(-1, keepdims=True))).sum(-1) / ((u - um) ** 2).sum()
+        icpt = seg.mean(-1) - slope * um
+        with np.errstate(divide="ignore", invalid="ignore"):
+            pos = c + (thr - icpt) / slope
+        good = ok & (slope > 0) & (pos >= c - K) & (pos <= c + K + 1)
+        return np.where(good, pos, np.where(ok, lo + 0.5, np.nan))
+    e0 = env[rows, lo]
+    e1 = env[rows, lo + 1]
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = (thr - e0) / (e1 - e0)
     return np.where(ok, lo + np.clip(frac, 0.0, 1.0), np.nan)
@@ -79,7 +125,7 @@ class DelayEstimate:
     parabolic : ndarray
         Correlation peak refined by a parabola.
     phase_slope : ndarray
-        Cross-spectrum phase slope over the band (group delay), started from ``parabolic``.
+        Cross-spectrum phase slope over the band (line through the origin), started from ``parabolic``.
     peak_correlation : ndarray
         Normalised correlation coefficient at the peak (1 for identical shapes).
     """
@@ -122,24 +168,20 @@ def xcorr_delay_from_spectra(
 
 
 def phase_slope_delay(C: np.ndarray, n_fft: int, band_bins: np.ndarray, *, start: np.ndarray) -> np.ndarray:
-    """Group delay [samples] from the weighted slope of ``angle(C)`` over ``band_bins``.
+    """Delay [samples] from the weighted slope of ``angle(C)`` over ``band_bins``.
 
-    The phase is first de-rotated by the ``start`` delay so that it stays within a
-    fraction of a turn over the band, then unwrapped; a straight line with intercept
-    is fitted with weights ``|C|`` (weighted least squares), and delay = start - slope.
+    A pure delay tau gives angle(C(w)) = -w tau. The phase is de-rotated by the
+    ``start`` delay so that what is left stays well inside one turn over the band,
+    unwrapped, and a line through the origin is fitted with weights ``|C|``
+    (weighted least squares): delay = start - sum(w om phi) / sum(w om^2).
     """
     k = np.asarray(band_bins)
     omega = 2.0 * np.pi * k / n_fft  # rad/sample
     Cb = C[:, k] * np.exp(1j * omega[None, :] * start[:, None])
     phi = np.unwrap(np.angle(Cb), axis=-1)
     w = np.abs(Cb)
-    sw = w.sum(-1)
     with np.errstate(divide="ignore", invalid="ignore"):
-        om = (w * omega).sum(-1) / sw
-        ph = (w * phi).sum(-1) / sw
-        slope = (w * (omega - om[:, None]) * (phi - ph[:, None])).sum(-1) / (
-            w * (omega - om[:, None]) ** 2
-        ).sum(-1)
+        slope = (w * omega * phi).sum(-1) / (w * omega**2).sum(-1)
     return start - slope
 
 
@@ -211,8 +253,10 @@ def phase_delay(x: np.ndarray, ref: np.ndarray, frequency_norm: float, *, near=N
                                 frequency_norm, near=near)
 
 
-def envelope_arrivals(x: np.ndarray, *, fraction: float = 0.5, n_fft: int | None = None):
+def envelope_arrivals(x: np.ndarray, *, fraction: float = 0.5, n_fft: int | None = None,
+                      half_width: int | None = None, fit_half_width: int = 0):
     """(envelope-peak index, threshold-crossing index) of each row, via :func:`hilbert_envelope`."""
     env = hilbert_envelope(_rows(x), n_fft=n_fft)
-    ipk, _ = envelope_peak_index(env)
-    return ipk, threshold_crossing_index(env, fraction)
+    ipk, peak = envelope_peak_index(env, half_width=half_width)
+    return ipk, threshold_crossing_index(env, fraction, peak_value=peak if half_width else None,
+                                         fit_half_width=fit_half_width)

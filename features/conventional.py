@@ -1,7 +1,8 @@
 """The conventional estimate: what a practitioner does without machine learning.
 
 1. Measure the arrival-time shift of one mode (A0 by default) against the baseline
-   (cross-correlation, phase-slope refined).
+   (envelope peak: a group delay, the quantity the group-velocity inversion needs;
+   the cross-correlation follows the carrier, i.e. the phase velocity).
 2. Correct it for temperature with the material's coefficients: subtract the shift
    that the temperature difference alone would cause on the sound plate
    (:class:`features.temperature.ThermalModel`: expansion of path and thickness,
@@ -108,7 +109,7 @@ def conventional_estimate(family: Family, *, shift_s: float, temperature_c: floa
 def conventional_estimate_frame(family: Family, features: pd.DataFrame, *, mode: str = "A0",
                                 shift_column: str | None = None) -> pd.DataFrame:
     """The conventional estimate for every row of a feature table (same index)."""
-    col = shift_column or f"{mode.lower()}_shift_xcorr_phase_slope_s"
+    col = shift_column or f"{mode.lower()}_shift_envelope_s"
     for c in (col, "capture_temperature_c", "baseline_temperature_c"):
         if c not in features.columns:
             raise ValueError(f"feature table has no column {c!r}; build it with features.extractor.")

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Iterable, Sequence
 
 import numpy as np
@@ -73,7 +73,8 @@ class _Plan:
     sig_n_fft: int
     max_stretch: float
     burst_centre_s: float
-    timings: dict = field(default_factory=dict)
+    peak_half_width: int
+    edge_half_width: int
 
 
 class FeatureExtractor:
@@ -162,8 +163,10 @@ class FeatureExtractor:
         sig_gate = tukey_gate(sig_len, 0, sig_len, taper_samples=int(_TAPER_FRACTION * sig_len / 2))
         env = fam.environment
         max_stretch = 1.25 * abs(self._s0_coeff) * (env.max_temperature_c - env.min_temperature_c)
+        burst_samples = cycles / f0 * fs
         return _Plan(fs, pre, n, modes, sig_start, sig_stop, sig_gate,
-                     sfft.next_fast_len(2 * sig_len, real=True), max(max_stretch, 0.004), burst_centre)
+                     sfft.next_fast_len(2 * sig_len, real=True), max(max_stretch, 0.004), burst_centre,
+                     max(1, int(burst_samples / 8)), max(0, int(burst_samples / 14)))
 
     # ------------------------------------------------------------------ core
     def _core(self, plan: _Plan, W: np.ndarray, B: np.ndarray, T: np.ndarray, Tb: np.ndarray,
@@ -192,9 +195,10 @@ class FeatureExtractor:
             X, R = XR[:n_rows], XR[n_rows:]
             length = mp.stop - mp.start
             env = np.abs(analytic_from_rfft(XR, mp.n_fft)[:, :length])
-            ipk = np.argmax(env, axis=-1)
-            pk_idx, pk_val = parabolic_peak(env, ipk)
-            thr_idx = threshold_crossing_index(env, self.threshold_fraction, peak_index=ipk)
+            pk_idx, pk_val = envelope_peak_index(env, half_width=plan.peak_half_width)
+            ipk = np.clip(np.rint(pk_idx).astype(int), 0, length - 1)
+            thr_idx = threshold_crossing_index(env, self.threshold_fraction, peak_index=ipk, peak_value=pk_val,
+                                               fit_half_width=plan.edge_half_width)
             to_s = lambda i: (mp.start + i) / fs - pre  # noqa: E731
             arr_env, base_env = to_s(pk_idx[:n_rows]), to_s(pk_idx[n_rows:])
             arr_thr, base_thr = to_s(thr_idx[:n_rows]), to_s(thr_idx[n_rows:])
@@ -253,12 +257,13 @@ class FeatureExtractor:
             t0 = tick()
             thermal = self.thermal.thermal_shift_s(mode, T, Tb)
             out[f"{p}_thermal_shift_s"] = thermal
-            out[f"{p}_shift_corrected_s"] = out[f"{p}_shift_xcorr_phase_slope_s"] - thermal
+            # the thermal model predicts group delays: compare with the envelope (group) shift
+            out[f"{p}_shift_corrected_s"] = out[f"{p}_shift_envelope_s"] - thermal
             add("temperature", t0)
 
         t0 = tick()
         st = baseline_stretch(W, B, sample_rate_hz=fs, pretrigger_s=pre, start=plan.sig_start,
-                              stop=plan.sig_stop, max_stretch=plan.max_stretch)
+                              stop=plan.sig_stop, max_stretch=plan.max_stretch, origin_s=plan.burst_centre_s)
         xw = W[:, plan.sig_start:plan.sig_stop]
         for mode, mp in plan.modes.items():
             a, b = mp.start - plan.sig_start, mp.stop - plan.sig_start
@@ -276,10 +281,9 @@ class FeatureExtractor:
         out["stretch_residual"] = st.residual
         out["unstretched_residual"] = st.unstretched_residual
         with np.errstate(divide="ignore", invalid="ignore"):
-            out["s0_stretch_factor"] = 1.0 + out["s0_shift_xcorr_phase_slope_s"] / out["s0_baseline_arrival_envelope_s"]
-            out["a0_s0_differential_shift_s"] = (
-                out["a0_shift_xcorr_phase_slope_s"] - self._r * out["s0_shift_xcorr_phase_slope_s"]
-            )
+            out["s0_stretch_factor"] = 1.0 + out["s0_shift_envelope_s"] / (
+                out["s0_baseline_arrival_envelope_s"] - plan.burst_centre_s)
+            out["a0_s0_differential_shift_s"] = out["a0_shift_envelope_s"] - self._r * out["s0_shift_envelope_s"]
             out["a0_s0_differential_energy_db"] = out["a0_energy_ratio_db"] - out["s0_energy_ratio_db"]
             out["a0_s0_differential_thickness_ratio"] = (
                 out["a0_sharpest_thickness_ratio"] / out["s0_sharpest_thickness_ratio"]
@@ -454,7 +458,7 @@ class FeatureExtractor:
         idx, _ = select_baseline(
             capture.amplitude_v, np.stack([b.amplitude_v for b in baselines]), temps, capture.temperature_c,
             sample_rate_hz=plan.sample_rate_hz, pretrigger_s=plan.pretrigger_s, start=plan.sig_start,
-            stop=plan.sig_stop, max_stretch=plan.max_stretch,
+            stop=plan.sig_stop, max_stretch=plan.max_stretch, origin_s=plan.burst_centre_s,
         )
         return baselines[idx], rep, len(baselines)
 

@@ -126,6 +126,8 @@ class StretchResult:
         The same without stretch (a = 1).
     stretched_baseline : ndarray
         The baseline stretched by ``factor`` on the window samples.
+
+    The factor multiplies propagation times measured from the stretch origin.
     """
 
     factor: np.ndarray
@@ -165,8 +167,15 @@ def baseline_stretch(
     max_stretch: float = 0.025,
     coarse_step: float = 0.002,
     fine_steps: int = 9,
+    origin_s: float = 0.0,
 ) -> StretchResult:
     """Best stretch factor a in [1 - max_stretch, 1 + max_stretch] per row (BSS), on samples [start, stop).
+
+    The baseline is stretched about ``origin_s`` (trigger time axis):
+    b_a(t) = b(origin + (t - origin) / a). Propagation delays scale with temperature,
+    so the natural origin is the moment the burst centre leaves the transmitter
+    (cycles / (2 f0) after the trigger); about the trigger itself the factor would
+    come out smaller by (t - t_c) / t.
 
     Coarse grid search with step ``coarse_step``, then a fine grid of ``fine_steps``
     points across one coarse step around the best point, then a parabola through the
@@ -176,7 +185,8 @@ def baseline_stretch(
     b = np.atleast_2d(np.asarray(baselines, dtype=float))
     n_rows = x.shape[0]
     idx = np.arange(start, stop)
-    t = idx / sample_rate_hz - pretrigger_s
+    t = idx / sample_rate_hz - pretrigger_s - origin_s
+    pretrigger_s = pretrigger_s + origin_s  # index of time t (relative to origin): (t + pre + origin) fs
     xw = x[:, start:stop]
     xn = np.sqrt((xw * xw).sum(-1))
     n_c = int(np.ceil(max_stretch / coarse_step))
