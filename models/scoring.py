@@ -1,0 +1,442 @@
+"""Score incoming captures with a model bundle, into the history database.
+
+:func:`score_captures` is what ``waneguide score`` runs:
+
+1. **Check** every capture (and baseline) against the model before anything is scored:
+   a capture made for another family (its ``family_fingerprint`` header differs from
+   the model's) or at a sample rate the model cannot use (more than 0.1 % from the
+   family's) is refused with a ``ValueError`` naming the file; so is a capture whose
+   path has no baseline (baselines are matched by ``path_id``: a baseline from another
+   path is never used).
+2. **Skip** captures the history already holds for this model version (same content
+   hash): a rerun after an interruption only scores the rest, and a capture scored
+   twice is counted once.
+3. **Score** the rest in chunks, serially, with joblib processes (``n_jobs``) or on a
+   Dask cluster (``scheduler``): quality gate and features
+   (:func:`features.extractor.extract_feature_table`), then
+   :meth:`models.bundle.ModelBundle.predict_frame`. A capture the quality gate rejects
+   gets a ``rejected`` row with its flags and no estimate.
+4. **Store** each finished chunk in one transaction (:class:`models.history.History`),
+   so a killed batch keeps every finished chunk.
+
+The result has :data:`SCORE_OUTPUT_COLUMNS` first (the ``--out`` CSV contract), then
+``content_hash, model_version, status, newly_scored, limit_pct`` and the estimates in mm.
+"""
+from __future__ import annotations
+
+import json
+import math
+import os
+import uuid
+from pathlib import Path
+from typing import Any, Iterable, Sequence
+
+import numpy as np
+
+__all__ = [
+    "SCORE_OUTPUT_COLUMNS",
+    "SAMPLE_RATE_TOLERANCE",
+    "score_captures",
+    "load_model",
+    "format_scores",
+    "write_scores_csv",
+]
+
+#: Columns of ``waneguide score --out``, in this order (more may follow).
+SCORE_OUTPUT_COLUMNS = (
+    "file", "path_id", "captured_at", "temperature_c",
+    "max_loss_pct", "max_loss_pct_lower", "max_loss_pct_upper",
+    "mean_loss_pct", "mean_loss_pct_lower", "mean_loss_pct_upper",
+    "exceed_probability", "in_family", "mismatch_p_value", "mismatch_reasons", "quality_flags",
+)
+_EXTRA_COLUMNS = ("content_hash", "model_version", "status", "newly_scored", "limit_pct",
+                  "max_loss_mm", "max_loss_mm_lower", "max_loss_mm_upper")
+_PREDICTION_COLUMNS = ("max_loss_pct", "max_loss_pct_lower", "max_loss_pct_upper", "max_loss_mm",
+                       "max_loss_mm_lower", "max_loss_mm_upper", "mean_loss_pct", "mean_loss_pct_lower",
+                       "mean_loss_pct_upper", "exceed_probability", "in_family", "mismatch_p_value",
+                       "mismatch_reasons")
+#: Relative sample-rate difference the model accepts (the quality gate's rule, features.quality).
+SAMPLE_RATE_TOLERANCE = 1e-3
+DEFAULT_CHUNK = 32
+
+
+# --------------------------------------------------------------------------------------
+def load_model(model, *, tracking_uri: str | None = None):
+    """A :class:`~models.bundle.ModelBundle` from a bundle, a bundle folder or a registry name."""
+    from models.bundle import ModelBundle, load_bundle
+
+    if isinstance(model, ModelBundle):
+        return model
+    p = Path(str(model))
+    if p.exists():
+        return load_bundle(p)
+    try:
+        from models.registry import resolve_model
+    except ImportError:  # registry not available: only folders work
+        raise ValueError(f"model {str(model)!r} is neither a bundle folder nor a known registry name.") from None
+    return load_bundle(resolve_model(str(model), tracking_uri=tracking_uri))
+
+
+def _is_capture(x) -> bool:
+    from features.capture import Capture
+
+    return isinstance(x, Capture)
+
+
+def _items(captures) -> list:
+    """Capture objects and file paths, in input order (directories expanded, sorted)."""
+    from features.io import capture_files
+
+    if captures is None:
+        raise ValueError("no captures given; pass a folder, files, or Capture objects.")
+    if _is_capture(captures) or isinstance(captures, (str, os.PathLike)):
+        captures = [captures]
+    out: list = []
+    paths: list = []
+    for c in captures:
+        if _is_capture(c):
+            if paths:
+                out.extend(capture_files(paths))
+                paths = []
+            out.append(c)
+        else:
+            paths.append(c)
+    if paths:
+        out.extend(capture_files(paths))
+    if not out:
+        raise ValueError("no captures given.")
+    return out
+
+
+def _read(item):
+    from features.io import read_capture
+
+    if _is_capture(item):
+        return item
+    cap = read_capture(item)
+    if not cap.source:
+        from dataclasses import replace
+
+        cap = replace(cap, source=str(item))
+    return cap
+
+
+def _label(cap) -> str:
+    return cap.source or f"(in-memory capture of path {cap.path_id!r} at {cap.captured_at})"
+
+
+def check_fits_model(cap, family, *, role: str = "capture") -> str | None:
+    """Why ``cap`` cannot be scored by a model of ``family`` (None when it can)."""
+    fp = (cap.extra or {}).get("family_fingerprint")
+    if fp not in (None, "") and str(fp) != family.fingerprint:
+        return (f"{role} {_label(cap)} was recorded for family fingerprint {fp} "
+                f"({(cap.extra or {}).get('family', 'unnamed')}), but the model is for family {family.name} "
+                f"(fingerprint {family.fingerprint}); score it with a model of its own family.")
+    fs = float(cap.sample_rate_hz)
+    want = family.acquisition.sample_rate_hz
+    if not math.isfinite(fs) or abs(fs - want) > SAMPLE_RATE_TOLERANCE * want:
+        return (f"{role} {_label(cap)} is sampled at {fs:g} Hz but the model's family {family.name} is "
+                f"acquired at {want:g} Hz (tolerance {SAMPLE_RATE_TOLERANCE:.1%}); its features would not "
+                "fit the model. Resample at the family's rate or use a model trained for this rate.")
+    if not cap.path_id:
+        return f"{role} {_label(cap)} has no path_id; set it in the capture header."
+    return None
+
+
+def _baselines(baselines, captures_arg, family) -> dict[str, list]:
+    """Baselines by path_id, each checked against the model."""
+    if baselines is None:
+        # default: a "baselines" folder inside (or beside) the captures folder
+        cand = None
+        if isinstance(captures_arg, (str, os.PathLike)) and Path(captures_arg).is_dir():
+            for d in (Path(captures_arg) / "baselines", Path(captures_arg).parent / "baselines"):
+                if d.is_dir():
+                    cand = d
+                    break
+        if cand is None:
+            raise ValueError(
+                "no baselines given: pass --baselines DIR (captures of each path recorded when the metal was "
+                "sound), or put them in a 'baselines' folder inside the captures folder."
+            )
+        baselines = cand
+    by_path: dict[str, list] = {}
+    for item in _items(baselines):
+        b = _read(item)
+        why = check_fits_model(b, family, role="baseline")
+        if why:
+            raise ValueError(why)
+        by_path.setdefault(b.path_id, []).append(b)
+    return by_path
+
+
+def _check_item(item, family, hashes_done: set, baseline_paths) -> tuple[str, str, str | None, bool]:
+    """(content hash, path_id, refusal or None, already scored) for one capture."""
+    from models.history import capture_content_hash
+
+    cap = _read(item)
+    why = check_fits_model(cap, family)
+    if why is None and cap.path_id not in baseline_paths:
+        why = (f"capture {_label(cap)} is from path {cap.path_id!r}, but no baseline is from that path "
+               f"(baselines cover: {', '.join(sorted(map(repr, baseline_paths))) or 'none'}); a baseline from "
+               "another path cannot be used. Add a baseline recorded on that path when the metal was sound.")
+    h = capture_content_hash(cap)
+    return h, cap.path_id, why, h in hashes_done
+
+
+def _score_chunk(bundle, items: Sequence, baselines_by_path: dict, limit_pct, batch_id: str) -> list[dict]:
+    """Score one chunk; returns history rows (worker side: no database access)."""
+    import pandas as pd
+
+    from features.extractor import extract_feature_table
+    from models.history import capture_content_hash
+
+    caps = [_read(it) for it in items]
+    family = bundle.family
+    bl = [b for pid in sorted({c.path_id for c in caps}) for b in baselines_by_path[pid]]
+    feats = extract_feature_table(family, caps, bl, on_reject="nan")
+    ok = np.isfinite(pd.to_numeric(feats["sample_rate_hz"], errors="coerce").to_numpy(float))
+    pred = pd.DataFrame(index=feats.index, columns=list(_PREDICTION_COLUMNS), dtype=object)
+    if ok.any():
+        p = bundle.predict_frame(feats[ok], limit_pct=limit_pct)
+        for c in _PREDICTION_COLUMNS:
+            if c in p:
+                pred.loc[ok, c] = p[c].to_numpy(object)
+    num_cols = [c for c in feats.columns if c not in ("file", "path_id", "captured_at", "quality_flags",
+                                                     "baseline_file") and pd.api.types.is_numeric_dtype(feats[c])]
+    rows = []
+    for i, cap in enumerate(caps):
+        f = feats.iloc[i]
+        rec: dict[str, Any] = {
+            "content_hash": capture_content_hash(cap),
+            "model_version": str(bundle.version),
+            "family_name": family.name,
+            "family_fingerprint": bundle.family_fingerprint,
+            "file": cap.source or "",
+            "path_id": cap.path_id,
+            "captured_at": cap.captured_at,
+            "temperature_c": cap.temperature_c,
+            "quality_flags": f.get("quality_flags", ""),
+            "limit_pct": limit_pct,
+            "batch_id": batch_id,
+        }
+        if ok[i]:
+            rec["status"] = "scored"
+            for c in _PREDICTION_COLUMNS:
+                rec[c] = pred.iloc[i][c]
+            vals = {c: float(f[c]) for c in num_cols if np.isfinite(f[c])}
+            rec["features_json"] = json.dumps(vals, separators=(",", ":"))
+        else:
+            rec["status"] = "rejected"
+            rec["in_family"] = False
+            rec["mismatch_reasons"] = "rejected by the quality gate: " + str(f.get("quality_flags", ""))
+        rows.append(rec)
+    return rows
+
+
+def _chunks(seq: list, size: int) -> list[list]:
+    return [seq[i:i + size] for i in range(0, len(seq), size)]
+
+
+def _run_chunks(fn, chunks, *, n_jobs: int, scheduler):
+    """Yield each chunk's result as it finishes (serial, joblib or Dask)."""
+    if scheduler is not None:
+        yield from _run_dask(fn, chunks, scheduler=scheduler, n_jobs=n_jobs)
+        return
+    if n_jobs == 1 or len(chunks) <= 1:
+        for ch in chunks:
+            yield fn(ch)
+        return
+    from joblib import Parallel, delayed
+
+    par = Parallel(n_jobs=n_jobs, return_as="generator_unordered", backend="loky")
+    yield from par(delayed(fn)(ch) for ch in chunks)
+
+
+def _run_dask(fn, chunks, *, scheduler, n_jobs: int):
+    from distributed import Client, LocalCluster, as_completed
+
+    cluster = None
+    if isinstance(scheduler, Client):
+        client, own = scheduler, False
+    elif str(scheduler) == "local":
+        cluster = LocalCluster(n_workers=max(1, n_jobs), threads_per_worker=1, processes=True,
+                               host="127.0.0.1", dashboard_address=None)
+        client, own = Client(cluster), True
+    else:
+        addr = str(scheduler)
+        if not (addr.startswith("tcp://") or addr.startswith("tls://") or addr.startswith("inproc://")):
+            raise ValueError(f"--scheduler must be a Dask scheduler address such as tcp://127.0.0.1:8786, "
+                             f"or 'local'; got {addr!r}.")
+        client, own = Client(addr), True
+    try:
+        futures = [client.submit(fn, ch, pure=False) for ch in chunks]
+        for fut in as_completed(futures):
+            yield fut.result()
+    finally:
+        if own:
+            client.close()
+            if cluster is not None:
+                cluster.close()
+
+
+class _Job:
+    """Picklable chunk scorer (the bundle travels once per task with joblib/Dask)."""
+
+    def __init__(self, bundle, baselines_by_path, limit_pct, batch_id):
+        self.bundle = bundle
+        self.baselines_by_path = baselines_by_path
+        self.limit_pct = limit_pct
+        self.batch_id = batch_id
+
+    def __call__(self, items):
+        return _score_chunk(self.bundle, items, self.baselines_by_path, self.limit_pct, self.batch_id)
+
+
+def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None = None,
+                   db_url: str | None = None, n_jobs: int = 1, scheduler=None,
+                   chunk_size: int = DEFAULT_CHUNK, progress: bool = False,
+                   tracking_uri: str | None = None):
+    """Score captures into the history; returns one row per capture, in input order.
+
+    Parameters
+    ----------
+    bundle : ModelBundle, bundle folder or registry name
+    captures : folder, file, Capture, or a list of them
+    baselines : folder, file, Capture or list, optional
+        Baseline captures (sound metal) of every path; default: the ``baselines`` folder
+        inside or beside the captures folder. Matched to captures by ``path_id``.
+    limit_pct : float, optional
+        Limit on the maximum wall loss [% of nominal] for ``exceed_probability``.
+    db_url : str, optional
+        History database URL (default ``sqlite:///waneguide-history.db``).
+    n_jobs : int
+        joblib worker processes (1: in this process). With ``scheduler``, the number of
+        local Dask workers for ``scheduler="local"``.
+    scheduler : str or distributed.Client, optional
+        A Dask scheduler address (``tcp://127.0.0.1:8786``), ``"local"``, or a Client.
+    chunk_size : int
+        Captures per task and per database transaction.
+    progress : bool
+        Show a tqdm bar (stderr).
+
+    Returns
+    -------
+    DataFrame
+        :data:`SCORE_OUTPUT_COLUMNS`, then ``content_hash, model_version, status,
+        newly_scored, limit_pct, max_loss_mm...``.
+
+    Raises
+    ------
+    ValueError
+        A capture or baseline that cannot fit the model (family fingerprint, sample
+        rate, missing path_id), a capture without a baseline of its path, a bundle that
+        fails its integrity check, bad ``limit_pct``/``n_jobs``/``chunk_size``.
+    """
+    import pandas as pd
+
+    from models.history import History
+
+    if limit_pct is not None:
+        lp = float(limit_pct)
+        if not (math.isfinite(lp) and 0 < lp < 100):
+            raise ValueError(f"limit_pct must be a wall loss in percent of nominal thickness, 0 < L < 100; "
+                             f"got {limit_pct!r}.")
+        limit_pct = lp
+    if int(n_jobs) != n_jobs or n_jobs == 0 or n_jobs < -1:
+        raise ValueError(f"n_jobs must be a positive integer (or -1 for all cores); got {n_jobs!r}.")
+    if int(chunk_size) < 1:
+        raise ValueError(f"chunk_size must be a positive integer; got {chunk_size!r}.")
+    bundle = load_model(bundle, tracking_uri=tracking_uri)
+    family = bundle.family
+    items = _items(captures)
+    by_path = _baselines(baselines, captures, family)
+    hist = History(db_url)
+    try:
+        done = hist.scored_hashes(str(bundle.version))
+        checks = [_check_item(it, family, done, by_path) for it in items]
+        refusals = [c[2] for c in checks if c[2]]
+        if refusals:
+            more = f" (and {len(refusals) - 1} more)" if len(refusals) > 1 else ""
+            raise ValueError(f"refused: {refusals[0]}{more}; nothing was scored.")
+        hashes = [c[0] for c in checks]
+        todo_idx: list[int] = []
+        seen: set[str] = set()
+        for i, (h, _, _, was_done) in enumerate(checks):
+            if not was_done and h not in seen:
+                todo_idx.append(i)
+                seen.add(h)
+        batch_id = uuid.uuid4().hex[:12]
+        job = _Job(bundle, by_path, limit_pct, batch_id)
+        chunks = _chunks([items[i] for i in todo_idx], int(chunk_size))
+        bar = None
+        if progress:
+            from tqdm.auto import tqdm
+
+            bar = tqdm(total=len(todo_idx), desc="scoring", unit="capture", leave=False)
+        new_hashes: set[str] = set()
+        try:
+            for rows in _run_chunks(job, chunks, n_jobs=int(n_jobs), scheduler=scheduler):
+                hist.add_scores(rows)
+                new_hashes.update(r["content_hash"] for r in rows)
+                if bar is not None:
+                    bar.update(len(rows))
+        finally:
+            if bar is not None:
+                bar.close()
+        stored = hist.scores(model_version=str(bundle.version), content_hashes=hashes)
+    finally:
+        hist.close()
+    stored = stored.drop_duplicates("content_hash").set_index("content_hash")
+    out = stored.reindex(hashes).reset_index()
+    # the file name of *this* run (a copy of an already scored capture keeps its own name here)
+    out["file"] = [str(it) if not _is_capture(it) else (it.source or "") for it in items]
+    out["newly_scored"] = [h in new_hashes for h in hashes]
+    out["in_family"] = out["in_family"].astype("boolean")
+    cols = list(SCORE_OUTPUT_COLUMNS) + [c for c in _EXTRA_COLUMNS if c not in SCORE_OUTPUT_COLUMNS]
+    for c in cols:
+        if c not in out:
+            out[c] = np.nan
+    return out[cols]
+
+
+def write_scores_csv(df, path) -> Path:
+    """Write the score table as CSV atomically (``--out``)."""
+    from features.atomic import atomic_path
+
+    with atomic_path(path) as tmp:
+        df.to_csv(tmp, index=False, lineterminator="\n")
+    return Path(path)
+
+
+def format_scores(df, *, max_rows: int = 60) -> str:
+    """The score table for the terminal (a few columns, rounded) with the caution."""
+    from waneguide_cli.main import CAUTION
+
+    view = df.copy()
+    view["file"] = [Path(str(f)).name for f in view["file"]]
+    band = [("n/a" if not (np.isfinite(lo) and np.isfinite(hi)) else f"[{lo:5.1f}, {hi:5.1f}]")
+            for lo, hi in zip(view["max_loss_pct_lower"].astype(float), view["max_loss_pct_upper"].astype(float))]
+    table = {
+        "file": view["file"], "path": view["path_id"], "captured_at": view["captured_at"].astype(str).str[:19],
+        "T_degC": view["temperature_c"].astype(float).round(1),
+        "max_loss_%": view["max_loss_pct"].astype(float).round(1), "band_%": band,
+        "mean_loss_%": view["mean_loss_pct"].astype(float).round(1),
+        "P_exceed": view["exceed_probability"].astype(float).round(3),
+        "in_family": view["in_family"].map({True: "yes", False: "NO"}).fillna("-"),
+        "status": view["status"],
+    }
+    import pandas as pd
+
+    t = pd.DataFrame(table)
+    text = t.head(max_rows).to_string(index=False, na_rep="-")
+    if len(t) > max_rows:
+        text += f"\n... {len(t) - max_rows} more rows (see --out)"
+    n_new = int(view["newly_scored"].sum()) if "newly_scored" in view else len(view)
+    n_oof = int((view["in_family"] == False).sum())  # noqa: E712
+    lines = [text, "", f"{len(view)} capture(s): {n_new} newly scored, {len(view) - n_new} already in the history; "
+                       f"{n_oof} flagged out of family or rejected (their estimates are not to be used)."]
+    reasons = view.loc[view["in_family"] == False, ["file", "mismatch_reasons"]].head(10)  # noqa: E712
+    for f, r in reasons.itertuples(index=False):
+        lines.append(f"  {f}: {r}")
+    lines.append(CAUTION)
+    return "\n".join(lines)
