@@ -1,0 +1,354 @@
+"""Out-of-family detector: statistical novelty score with a conformal p-value, plus physics checks.
+
+Statistical part (:class:`MismatchDetector`). Two novelty scores on the
+standardised feature vector,
+
+* robust squared Mahalanobis distance to the Minimum Covariance Determinant
+  estimate (Rousseeuw & Van Driessen 1999, doi:10.1080/00401706.1999.10485670;
+  sklearn ``MinCovDet``), and
+* the IsolationForest anomaly score (Liu, Ting, Zhou 2008, doi:10.1109/ICDM.2008.17),
+
+are each turned into a rank u in [0, 1] against the in-family fitting sample and
+combined as s = max(u_MCD, u_IF). A held-out in-family calibration sample gives
+the conformal p-value (Vovk et al. 2005; Laxhammar & Falkman 2015 for conformal
+anomaly detection)
+
+    p(x) = (1 + #{i : s_i >= s(x)}) / (n_cal + 1),
+
+and a capture is flagged when p <= false_alarm_rate. For in-family
+(exchangeable) data P(p <= eps) <= eps, so the stated false-alarm rate holds by
+construction.
+
+Physics part (:class:`PhysicsChecker`): readable reasons when the baseline S0
+arrival does not fit the family's path length / flange thickness / material,
+when the received frequency content is off the excitation, or when the sample
+rate differs. The expected S0 arrival is spacing / c_g,S0(f_c, d_nominal)
+(Rayleigh-Lamb, features.dispersion); an offset common to the in-family data
+(how the feature extractor times an arrival, e.g. the burst centre) is learned
+from the training campaign together with its spread.
+
+A flagged capture still gets its numbers; the bundle marks them out of domain.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+from sklearn.base import BaseEstimator
+from sklearn.utils.validation import check_is_fitted, validate_data
+
+__all__ = ["MismatchDetector", "PhysicsChecker", "PHYSICS_FEATURES", "combine_mismatch"]
+
+#: Features the physics checks read (produced by features.extractor).
+PHYSICS_FEATURES = ("baseline_s0_arrival_s", "capture_peak_frequency_hz", "sample_rate_hz")
+
+
+def _pack_forest(iforest) -> dict:
+    """IsolationForest trees as padded arrays for a vectorised traversal (all trees at once).
+
+    ``leaf_depth`` holds, per node, the decision-path length plus the average path length
+    c(n_node_samples) minus one, i.e. exactly what sklearn adds per tree
+    (sklearn/ensemble/_iforest.py, ``_parallel_compute_tree_depths``).
+    """
+    from sklearn.ensemble._iforest import _average_path_length
+
+    trees = [e.tree_ for e in iforest.estimators_]
+    T, M = len(trees), max(t.node_count for t in trees)
+    left = np.full((T, M), -1, dtype=np.int32)
+    right = np.full((T, M), -1, dtype=np.int32)
+    feat = np.zeros((T, M), dtype=np.int32)
+    thr = np.zeros((T, M), dtype=np.float64)
+    leaf_depth = np.zeros((T, M), dtype=np.float64)
+    for i, (t, fs) in enumerate(zip(trees, iforest.estimators_features_)):
+        n = t.node_count
+        left[i, :n], right[i, :n] = t.children_left, t.children_right
+        # map the tree's (subsampled) feature index back to the full column index
+        feat[i, :n] = np.asarray(fs)[np.maximum(t.feature, 0)]
+        thr[i, :n] = t.threshold
+        depth = np.zeros(n)
+        for node in range(n):  # parents precede children in sklearn's node order
+            for child in (t.children_left[node], t.children_right[node]):
+                if child != -1:
+                    depth[child] = depth[node] + 1
+        leaf_depth[i, :n] = depth + 1 + _average_path_length(t.n_node_samples) - 1.0
+    return {"left": left, "right": right, "feature": feat, "threshold": thr, "leaf_depth": leaf_depth,
+            "max_depth": int(max(t.max_depth for t in trees)),
+            "denominator": float(T * _average_path_length([iforest._max_samples])[0])}
+
+
+def _forest_score(packed: dict, Z: np.ndarray) -> np.ndarray:
+    """-score_samples of the packed IsolationForest (larger = more anomalous)."""
+    Zf = np.asarray(Z, dtype=np.float32)  # sklearn trees compare float32 inputs
+    n, T = len(Zf), packed["left"].shape[0]
+    tix = np.arange(T)[None, :]
+    node = np.zeros((n, T), dtype=np.int64)
+    rows = np.arange(n)[:, None]
+    for _ in range(packed["max_depth"] + 1):
+        lft = packed["left"][tix, node]
+        inner = lft != -1
+        if not inner.any():
+            break
+        go_left = Zf[rows, packed["feature"][tix, node]] <= packed["threshold"][tix, node]
+        node = np.where(inner, np.where(go_left, lft, packed["right"][tix, node]), node)
+    depths = packed["leaf_depth"][tix, node].sum(axis=1)
+    den = packed["denominator"]
+    return 2.0 ** (-(depths / den)) if den else np.ones(n)
+
+
+class MismatchDetector(BaseEstimator):
+    """Conformal novelty detector (MinCovDet + IsolationForest), see module docstring.
+
+    Parameters
+    ----------
+    false_alarm_rate : float, default 0.01
+        In-family flag rate the p-value threshold guarantees.
+    calibration_fraction : float, default 0.3
+    max_fit_points : int, default 3000
+        Rows used to fit MinCovDet / IsolationForest (random subset above it).
+    n_estimators : int, default 200
+        IsolationForest trees.
+    support_fraction : float or None
+        MinCovDet support fraction (None: (n + d + 1) / 2 points, its default).
+    random_state : int or None
+
+    Attributes
+    ----------
+    columns_ : ndarray of int, columns used (constant ones dropped)
+    median_, scale_ : robust centring (median) and scale (IQR / 1.349) per column
+    mcd_, iforest_ : fitted sklearn models
+    forest_ : dict of arrays, the IsolationForest packed for vectorised scoring (same scores as
+        ``-iforest_.score_samples``, checked in tests/test_mismatch.py)
+    ref_md_, ref_if_ : sorted reference scores (fitting sample)
+    cal_scores_ : sorted combined scores of the calibration sample
+    """
+
+    def __init__(self, *, false_alarm_rate=0.01, calibration_fraction=0.3, max_fit_points=3000, n_estimators=200,
+                 support_fraction=None, random_state=None):
+        self.false_alarm_rate = false_alarm_rate
+        self.calibration_fraction = calibration_fraction
+        self.max_fit_points = max_fit_points
+        self.n_estimators = n_estimators
+        self.support_fraction = support_fraction
+        self.random_state = random_state
+
+    def fit(self, X, y=None):
+        from sklearn.covariance import MinCovDet
+        from sklearn.ensemble import IsolationForest
+
+        if not 0.0 < float(self.false_alarm_rate) < 1.0:
+            raise ValueError(f"false_alarm_rate must lie in (0, 1); got {self.false_alarm_rate!r}")
+        X = validate_data(self, X, ensure_all_finite="allow-nan", dtype=np.float64, ensure_min_samples=10)
+        rng = np.random.default_rng(self.random_state)
+        med = np.nanmedian(X, axis=0)
+        q75, q25 = np.nanpercentile(X, [75, 25], axis=0)
+        scale = (q75 - q25) / 1.349  # IQR of a normal = 1.349 sigma
+        std = np.nanstd(X, axis=0)
+        scale = np.where(scale > 0, scale, std)
+        self.columns_ = np.flatnonzero(np.isfinite(scale) & (scale > 0))
+        if self.columns_.size == 0:
+            raise ValueError("every feature is constant in the training data; the mismatch detector has nothing to learn")
+        self.median_ = np.where(np.isfinite(med), med, 0.0)
+        self.scale_ = np.where(scale > 0, scale, 1.0)
+        Z = self._standardise(X)
+        n = len(Z)
+        perm = rng.permutation(n)
+        n_cal = max(5, int(round(self.calibration_fraction * n)))
+        cal, fit = perm[:n_cal], perm[n_cal:]
+        if len(fit) > self.max_fit_points:
+            fit = fit[: int(self.max_fit_points)]
+        seed = lambda: int(rng.integers(2**31 - 1))  # noqa: E731
+        self.mcd_ = MinCovDet(support_fraction=self.support_fraction, random_state=seed()).fit(Z[fit])
+        self.iforest_ = IsolationForest(n_estimators=int(self.n_estimators), random_state=seed(), n_jobs=1).fit(Z[fit])
+        self.ref_md_ = np.sort(self.mcd_.mahalanobis(Z[fit]))
+        self.forest_ = _pack_forest(self.iforest_)
+        self.ref_if_ = np.sort(_forest_score(self.forest_, Z[fit]))
+        self.cal_scores_ = np.sort(self._combined(Z[cal]))
+        self.mcd_scale_ = np.sqrt(np.clip(np.diag(self.mcd_.covariance_), 1e-12, None))
+        return self
+
+    def _standardise(self, X):
+        Z = (X - self.median_) / self.scale_
+        Z = np.where(np.isfinite(Z), Z, 0.0)  # missing -> family median (reported by the physics checks)
+        return np.clip(Z[:, self.columns_], -1e6, 1e6)
+
+    def _combined(self, Z):
+        u_md = np.searchsorted(self.ref_md_, self.mcd_.mahalanobis(Z), side="right") / len(self.ref_md_)
+        u_if = np.searchsorted(self.ref_if_, _forest_score(self.forest_, Z), side="right") / len(self.ref_if_)
+        # tie-break above the reference range by the raw distance so far-off points rank highest
+        md = self.mcd_.mahalanobis(Z)
+        extra = np.where(u_md >= 1.0, np.log1p(md / max(self.ref_md_[-1], 1e-12)), 0.0)
+        return np.maximum(u_md, u_if) + extra
+
+    def novelty_score(self, X) -> np.ndarray:
+        """Combined novelty score (larger = less like the family)."""
+        check_is_fitted(self, "cal_scores_")
+        X = validate_data(self, X, reset=False, ensure_all_finite="allow-nan", dtype=np.float64)
+        return self._combined(self._standardise(X))
+
+    def p_value(self, X) -> np.ndarray:
+        """Conformal p-value of each row (small = unlike the in-family calibration sample)."""
+        return self._p_from_scores(self.novelty_score(X))
+
+    def p_value_array(self, X: np.ndarray) -> np.ndarray:
+        """Fast path of :meth:`p_value` without input validation (float array, fitted column order)."""
+        return self._p_from_scores(self._combined(self._standardise(np.asarray(X, dtype=float))))
+
+    def _p_from_scores(self, s):
+        n = len(self.cal_scores_)
+        count = n - np.searchsorted(self.cal_scores_, s, side="left")
+        return (1.0 + count) / (n + 1.0)
+
+    def predict(self, X) -> np.ndarray:
+        """+1 in family, -1 flagged (sklearn outlier-detector convention)."""
+        return np.where(self.p_value(X) > self.false_alarm_rate, 1, -1)
+
+    def top_deviations(self, X, k: int = 3) -> list[list[tuple[str, float]]]:
+        """Per row, the ``k`` features furthest from the robust centre (name, z)."""
+        check_is_fitted(self, "cal_scores_")
+        X = validate_data(self, X, reset=False, ensure_all_finite="allow-nan", dtype=np.float64)
+        Z = (self._standardise(X) - self.mcd_.location_) / self.mcd_scale_
+        names = np.asarray(getattr(self, "feature_names_in_", [f"x{j}" for j in range(self.n_features_in_)]))
+        names = names[self.columns_]
+        order = np.argsort(-np.abs(Z), axis=1)[:, :k]
+        return [[(str(names[j]), float(Z[i, j])) for j in row] for i, row in enumerate(order)]
+
+    def __sklearn_tags__(self):
+        tags = super().__sklearn_tags__()
+        tags.input_tags.allow_nan = True
+        return tags
+
+
+class PhysicsChecker:
+    """Family-bound physics plausibility checks with readable reasons.
+
+    Parameters
+    ----------
+    family : features.family.Family
+    arrival_rel_tol : float, default 0.03
+        Least tolerance on the baseline S0 arrival, as a fraction of the expected time.
+    frequency_rel_tol : float, default 0.25
+        Least tolerance on the peak frequency, as a fraction of the centre frequency.
+    sample_rate_rel_tol : float, default 1e-3
+    spread_factor : float, default 6
+        Tolerances widen to ``spread_factor`` robust standard deviations of the in-family values.
+    """
+
+    def __init__(self, family, *, arrival_rel_tol=0.03, frequency_rel_tol=0.25, sample_rate_rel_tol=1e-3,
+                 spread_factor=6.0):
+        self.family = family
+        self.arrival_rel_tol = arrival_rel_tol
+        self.frequency_rel_tol = frequency_rel_tol
+        self.sample_rate_rel_tol = sample_rate_rel_tol
+        self.spread_factor = spread_factor
+        self.state: dict = {}
+
+    def expected_s0_arrival_s(self) -> float:
+        """spacing / c_g of S0 at the centre frequency and nominal thickness (Rayleigh-Lamb)."""
+        from features.dispersion import fundamental_dispersion
+
+        fam = self.family
+        curves = fundamental_dispersion(fam.build_material(), fam.nominal_thickness_m,
+                                        fam.excitation.centre_frequency_hz)
+        cg = float(curves.group_velocity_m_s[0, curves.mode_index("S0"), 0])
+        return fam.path.spacing_m / cg
+
+    def fit(self, feature_df: pd.DataFrame) -> "PhysicsChecker":
+        """Learn the extractor's arrival offset and the in-family spreads."""
+        st = {"expected_s0_arrival_s": self.expected_s0_arrival_s(),
+              "centre_frequency_hz": self.family.excitation.centre_frequency_hz,
+              "sample_rate_hz": self.family.acquisition.sample_rate_hz}
+        for col, key in (("baseline_s0_arrival_s", "arrival"), ("capture_peak_frequency_hz", "frequency")):
+            if col in feature_df:
+                v = pd.to_numeric(feature_df[col], errors="coerce").to_numpy(dtype=float)
+                v = v[np.isfinite(v)]
+                if v.size:
+                    med = float(np.median(v))
+                    st[f"{key}_median"] = med
+                    st[f"{key}_spread"] = float(1.4826 * np.median(np.abs(v - med)))
+        self.state = st
+        return self
+
+    @classmethod
+    def from_state(cls, family, state: dict, **kw) -> "PhysicsChecker":
+        obj = cls(family, **kw)
+        obj.state = dict(state)
+        return obj
+
+    def params(self) -> dict:
+        return {"arrival_rel_tol": self.arrival_rel_tol, "frequency_rel_tol": self.frequency_rel_tol,
+                "sample_rate_rel_tol": self.sample_rate_rel_tol, "spread_factor": self.spread_factor}
+
+    def reasons(self, feature_df: pd.DataFrame) -> list[list[str]]:
+        """One list of readable reasons per row (empty list: passes)."""
+        if not self.state:
+            self.state = {"expected_s0_arrival_s": self.expected_s0_arrival_s(),
+                          "centre_frequency_hz": self.family.excitation.centre_frequency_hz,
+                          "sample_rate_hz": self.family.acquisition.sample_rate_hz}
+        st, fam = self.state, self.family
+        n = len(feature_df)
+        out: list[list[str]] = [[] for _ in range(n)]
+        col = lambda c: (pd.to_numeric(feature_df[c], errors="coerce").to_numpy(dtype=float)  # noqa: E731
+                         if c in feature_df else np.full(n, np.nan))
+        # 1. baseline S0 arrival vs path length / thickness / material
+        t = col("baseline_s0_arrival_s")
+        t_phys = st["expected_s0_arrival_s"]
+        centre = st.get("arrival_median", t_phys)
+        tol = max(self.arrival_rel_tol * t_phys, self.spread_factor * st.get("arrival_spread", 0.0))
+        mat = fam.build_material().name
+        for i in np.flatnonzero(np.isfinite(t) & (np.abs(t - centre) > tol)):
+            out[i].append(
+                f"baseline S0 arrival {t[i] * 1e6:.2f} us does not fit the family ({centre * 1e6:.2f} us "
+                f"+- {tol * 1e6:.2f} us expected for the {fam.path.transducer_spacing_mm:g} mm path in "
+                f"{fam.section.flange_thickness_mm:g} mm {mat}; Rayleigh-Lamb S0 time of flight "
+                f"{t_phys * 1e6:.2f} us): check the transducer spacing, the flange thickness and the alloy")
+        # 2. frequency content vs the excitation
+        f = col("capture_peak_frequency_hz")
+        fc = st["centre_frequency_hz"]
+        fcen = st.get("frequency_median", fc)
+        ftol = max(self.frequency_rel_tol * fc, self.spread_factor * st.get("frequency_spread", 0.0))
+        for i in np.flatnonzero(np.isfinite(f) & (np.abs(f - fcen) > ftol)):
+            out[i].append(f"peak frequency {f[i] / 1e3:.1f} kHz is off the family's {fc / 1e3:g} kHz excitation "
+                          f"(accepted {(fcen - ftol) / 1e3:.1f}-{(fcen + ftol) / 1e3:.1f} kHz): check the "
+                          f"pulser settings and the transducers")
+        # 3. sample rate
+        fs = col("sample_rate_hz")
+        fs_fam = st["sample_rate_hz"]
+        for i in np.flatnonzero(np.isfinite(fs) & (np.abs(fs - fs_fam) > self.sample_rate_rel_tol * fs_fam)):
+            out[i].append(f"sample rate {fs[i] / 1e6:g} MHz differs from the family's {fs_fam / 1e6:g} MHz: "
+                          f"re-acquire at the family's rate or use a family defined for this rate")
+        return out
+
+
+def combine_mismatch(detector: MismatchDetector | None, checker: PhysicsChecker | None,
+                     feature_df: pd.DataFrame, feature_columns, X: pd.DataFrame | None = None) -> pd.DataFrame:
+    """``in_family``, ``mismatch_p_value``, ``mismatch_reasons`` ("; "-joined) per row.
+
+    ``X``: the numeric feature matrix of ``feature_df`` (columns ``feature_columns``), when
+    the caller already has it.
+    """
+    n = len(feature_df)
+    reasons: list[list[str]] = [[] for _ in range(n)]
+    cols = list(feature_columns)
+    if X is None:
+        X = feature_df.reindex(columns=cols).apply(pd.to_numeric, errors="coerce")
+    nan_rows = X.isna().to_numpy()
+    for i in np.flatnonzero(nan_rows.any(axis=1)):
+        names = [cols[j] for j in np.flatnonzero(nan_rows[i])]
+        shown = ", ".join(names[:4]) + (f" and {len(names) - 4} more" if len(names) > 4 else "")
+        reasons[i].append(f"feature(s) {shown} could not be computed")
+    p = np.full(n, math.nan)
+    if detector is not None and n:
+        p = detector.p_value_array(X.to_numpy(dtype=float))
+        flagged = p <= detector.false_alarm_rate
+        if flagged.any():
+            tops = detector.top_deviations(X.iloc[np.flatnonzero(flagged)])
+            for i, top in zip(np.flatnonzero(flagged), tops):
+                desc = ", ".join(f"{name} (z = {z:+.1f})" for name, z in top)
+                reasons[i].append(f"features unlike the family's training data (p = {p[i]:.4f} <= "
+                                  f"{detector.false_alarm_rate:g}); furthest: {desc}")
+    if checker is not None and n:
+        for i, r in enumerate(checker.reasons(feature_df)):
+            reasons[i].extend(r)
+    return pd.DataFrame({"in_family": [not r for r in reasons], "mismatch_p_value": p,
+                         "mismatch_reasons": ["; ".join(r) for r in reasons]}, index=feature_df.index)

@@ -1,0 +1,125 @@
+"""MLflow run tracking with an embedded default store (no server needed).
+
+* MLflow is imported lazily (it costs seconds), so scoring and ``--help`` stay fast.
+* Default tracking URI: ``sqlite:///<working directory>/mlflow.db``; ``--tracking-uri`` for a
+  team server.
+* Telemetry is off (``MLFLOW_DISABLE_TELEMETRY=true``; ``DO_NOT_TRACK=true``): no outbound calls.
+* :func:`init_tracking` creates / migrates the store once per process, under a lock, before
+  any parallel work: concurrent first use of a new SQLite store races on its schema migration.
+"""
+from __future__ import annotations
+
+import math
+import os
+import threading
+from pathlib import Path
+from typing import Any, Mapping
+
+__all__ = ["default_tracking_uri", "init_tracking", "TrackedRun", "flatten_metrics", "experiment_name"]
+
+_READY: set[str] = set()
+_LOCK = threading.Lock()
+
+
+def _quiet_env() -> None:
+    os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
+    os.environ.setdefault("DO_NOT_TRACK", "true")
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+
+
+def default_tracking_uri() -> str:
+    """``sqlite:///`` + absolute path of ``mlflow.db`` in the working directory."""
+    return f"sqlite:///{(Path.cwd() / 'mlflow.db').resolve()}"
+
+
+def experiment_name(family_name: str) -> str:
+    return f"waneguide-{family_name}"
+
+
+def init_tracking(tracking_uri: str | None = None) -> str:
+    """Point MLflow at ``tracking_uri`` (default: :func:`default_tracking_uri`) and create the store once."""
+    _quiet_env()
+    uri = tracking_uri or default_tracking_uri()
+    import mlflow
+    from mlflow.tracking import MlflowClient
+
+    with _LOCK:
+        mlflow.set_tracking_uri(uri)
+        mlflow.set_registry_uri(uri)
+        if uri not in _READY:
+            try:
+                MlflowClient(uri).search_experiments(max_results=1)  # creates + migrates the schema
+            except Exception as exc:  # noqa: BLE001 - turn any store failure into a clear user error
+                raise ValueError(f"cannot open the MLflow tracking store {uri!r}: {exc}. "
+                                 f"Check --tracking-uri (default: sqlite file mlflow.db in the working directory)") from None
+            _READY.add(uri)
+    return uri
+
+
+def flatten_metrics(d: Mapping, prefix: str = "") -> dict[str, float]:
+    """Finite numeric leaves of a nested dict as ``a.b.c`` keys (MLflow metric names)."""
+    out: dict[str, float] = {}
+    for k, v in d.items():
+        key = f"{prefix}{k}".replace(" ", "_").replace("@", "_")
+        if isinstance(v, Mapping):
+            out.update(flatten_metrics(v, key + "."))
+        elif isinstance(v, bool):
+            out[key] = float(v)
+        elif isinstance(v, (int, float)) and math.isfinite(float(v)):
+            out[key] = float(v)
+    return out
+
+
+class TrackedRun:
+    """Context manager over one MLflow run; every method is a no-op when ``enabled`` is False.
+
+    Examples
+    --------
+    >>> with TrackedRun("waneguide-demo-fb2", enabled=False) as run:
+    ...     run.log_params({"seed": 0})
+    """
+
+    def __init__(self, experiment: str, *, run_name: str | None = None, tracking_uri: str | None = None,
+                 tags: Mapping[str, str] | None = None, enabled: bool = True):
+        self.experiment = experiment
+        self.run_name = run_name
+        self.tracking_uri = tracking_uri
+        self.tags = dict(tags or {})
+        self.enabled = enabled
+        self.run_id: str | None = None
+        self.uri: str | None = None
+        self._mlflow = None
+
+    def __enter__(self) -> "TrackedRun":
+        if not self.enabled:
+            return self
+        self.uri = init_tracking(self.tracking_uri)
+        import mlflow
+
+        self._mlflow = mlflow
+        mlflow.set_experiment(self.experiment)
+        run = mlflow.start_run(run_name=self.run_name, tags=self.tags)
+        self.run_id = run.info.run_id
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if self._mlflow is not None:
+            self._mlflow.end_run(status="FAILED" if exc_type else "FINISHED")
+
+    def log_params(self, params: Mapping[str, Any]) -> None:
+        if self._mlflow is not None:
+            self._mlflow.log_params({k: (str(v)[:500]) for k, v in params.items()})
+
+    def log_metrics(self, metrics: Mapping[str, Any]) -> None:
+        if self._mlflow is not None:
+            flat = flatten_metrics(metrics)
+            if flat:
+                self._mlflow.log_metrics(flat)
+
+    def set_tags(self, tags: Mapping[str, Any]) -> None:
+        if self._mlflow is not None:
+            self._mlflow.set_tags({k: str(v) for k, v in tags.items()})
+
+    def log_artifacts(self, local_dir: str | os.PathLike, artifact_path: str | None = None) -> None:
+        if self._mlflow is not None:
+            self._mlflow.log_artifacts(str(local_dir), artifact_path=artifact_path)
