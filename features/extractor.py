@@ -32,7 +32,7 @@ from .dispersion import fundamental_dispersion
 from .family import Family
 from .quality import CaptureRejected, QualityReport, assess_quality, assess_quality_arrays
 from .schema import FEATURE_SCHEMA_VERSION, METADATA_COLUMNS, feature_columns
-from .signals import analytic_from_rfft, excitation_band_hz, mode_windows, parabolic_peak, tukey_gate
+from .signals import decimated_analytic, excitation_band_hz, mode_windows, parabolic_peak, tukey_gate
 from .temperature import ThermalModel, baseline_stretch, select_baseline
 
 __all__ = ["FeatureExtractor", "extract_feature_table", "build_feature_file", "FEATURE_GROUPS"]
@@ -75,6 +75,7 @@ class _Plan:
     burst_centre_s: float
     peak_half_width: int
     edge_half_width: int
+    stride: int
 
 
 class FeatureExtractor:
@@ -122,6 +123,9 @@ class FeatureExtractor:
         mat = fam.build_material()
         cand, j_nom = candidate_thicknesses(fam.nominal_thickness_m, *self.thickness_grid)
         burst_centre = cycles / (2.0 * f0)
+        # envelope decimation D: the analytic signal is evaluated every D samples by folding
+        # its spectrum below fs / D (exact for content below fs / D; D keeps fs / D >= 8 f0)
+        stride = max(1, int(fs / (8.0 * f0)))
         modes: dict[str, _ModePlan] = {}
         for mode in _MODES:
             w = self.windows[mode]
@@ -133,7 +137,7 @@ class FeatureExtractor:
                     f"samples of a {n}-sample record at {fs:g} Hz; the record is too short for family {fam.name!r}."
                 )
             gate = tukey_gate(length, 0, length, taper_samples=int(_TAPER_FRACTION * length))
-            n_fft = sfft.next_fast_len(2 * length, real=True)
+            n_fft = stride * sfft.next_fast_len(-(-2 * length // stride), real=True)
             f_bins = np.arange(n_fft // 2 + 1) * fs / n_fft
             band = np.flatnonzero((f_bins >= lo) & (f_bins <= hi))
             half = 1.0 / cycles
@@ -166,7 +170,7 @@ class FeatureExtractor:
         burst_samples = cycles / f0 * fs
         return _Plan(fs, pre, n, modes, sig_start, sig_stop, sig_gate,
                      sfft.next_fast_len(2 * sig_len, real=True), max(max_stretch, 0.004), burst_centre,
-                     max(1, int(burst_samples / 8)), max(0, int(burst_samples / 14)))
+                     max(1, int(burst_samples / 8 / stride)), max(0, int(burst_samples / 14 / stride)), stride)
 
     # ------------------------------------------------------------------ core
     def _core(self, plan: _Plan, W: np.ndarray, B: np.ndarray, T: np.ndarray, Tb: np.ndarray,
@@ -194,11 +198,13 @@ class FeatureExtractor:
             XR = sfft.rfft(np.concatenate([xs, bs]), mp.n_fft, axis=-1)
             X, R = XR[:n_rows], XR[n_rows:]
             length = mp.stop - mp.start
-            env = np.abs(analytic_from_rfft(XR, mp.n_fft)[:, :length])
+            D = plan.stride
+            env = np.abs(decimated_analytic(XR, mp.n_fft, D)[:, : -(-length // D)])
             pk_idx, pk_val = envelope_peak_index(env, half_width=plan.peak_half_width)
-            ipk = np.clip(np.rint(pk_idx).astype(int), 0, length - 1)
+            ipk = np.clip(np.rint(pk_idx).astype(int), 0, env.shape[-1] - 1)
             thr_idx = threshold_crossing_index(env, self.threshold_fraction, peak_index=ipk, peak_value=pk_val,
                                                fit_half_width=plan.edge_half_width)
+            pk_idx, thr_idx = pk_idx * D, thr_idx * D
             to_s = lambda i: (mp.start + i) / fs - pre  # noqa: E731
             arr_env, base_env = to_s(pk_idx[:n_rows]), to_s(pk_idx[n_rows:])
             arr_thr, base_thr = to_s(thr_idx[:n_rows]), to_s(thr_idx[n_rows:])
@@ -263,7 +269,8 @@ class FeatureExtractor:
 
         t0 = tick()
         st = baseline_stretch(W, B, sample_rate_hz=fs, pretrigger_s=pre, start=plan.sig_start,
-                              stop=plan.sig_stop, max_stretch=plan.max_stretch, origin_s=plan.burst_centre_s)
+                              stop=plan.sig_stop, max_stretch=plan.max_stretch, origin_s=plan.burst_centre_s,
+                              stride=plan.stride)
         xw = W[:, plan.sig_start:plan.sig_stop]
         for mode, mp in plan.modes.items():
             a, b = mp.start - plan.sig_start, mp.stop - plan.sig_start
@@ -310,7 +317,7 @@ class FeatureExtractor:
         else:
             from joblib import Parallel, delayed
 
-            res = Parallel(n_jobs=n_jobs)(
+            res = Parallel(n_jobs=n_jobs, prefer="threads")(
                 delayed(_core_job)(self, plan, W[s], B[s], T[s], Tb[s]) for s in blocks
             )
             parts = [r[0] for r in res]
@@ -458,7 +465,7 @@ class FeatureExtractor:
         idx, _ = select_baseline(
             capture.amplitude_v, np.stack([b.amplitude_v for b in baselines]), temps, capture.temperature_c,
             sample_rate_hz=plan.sample_rate_hz, pretrigger_s=plan.pretrigger_s, start=plan.sig_start,
-            stop=plan.sig_stop, max_stretch=plan.max_stretch, origin_s=plan.burst_centre_s,
+            stop=plan.sig_stop, max_stretch=plan.max_stretch, origin_s=plan.burst_centre_s, stride=plan.stride,
         )
         return baselines[idx], rep, len(baselines)
 

@@ -14,9 +14,9 @@ flag                        fatal rule
 ``temperature_missing``     yes   no ``temperature_c`` (temperature compensation impossible)
 ``temperature_invalid``     yes   outside the material model's validity range
 ``clipped``                 yes   flat tops: 3 or more consecutive samples held at the peak |amplitude|
-``no_signal``               yes   SNR estimate below 6 dB (no packet above the noise)
+``no_signal``               yes   window peak below 1.5 x the largest excursion noise alone would reach
 ``saturated``               no    peak |amplitude| at or above 98 % of the family's ADC full scale
-``low_snr``                 no    SNR estimate more than 6 dB below the family's simulated range
+``low_snr``                 no    SNR estimate below the family's simulated range (``domain.snr_db``)
 ``record_length_mismatch``  no    record length differs from the family's (but holds the windows)
 ``pretrigger_mismatch``     no    pre-trigger differs from the family's by more than one sample
 ``temperature_out_of_range`` no   outside the family's environment range (model extrapolates)
@@ -26,7 +26,10 @@ flag                        fatal rule
 
 SNR estimate: noise RMS from the pre-trigger samples when there are at least 32 of
 them, else the quietest of 16 equal segments of the record; signal: the largest
-|amplitude| inside the S0 and A0 windows. The thresholds are common practice, no source.
+|amplitude| inside the S0 and A0 windows. Noise alone reaches about sigma sqrt(2 ln M) over M
+samples (expected maximum of M Gaussian samples, leading term; e.g. David & Nagaraja,
+*Order Statistics*, 2003, sec. 10.5, quoted from memory), so a packet must exceed 1.5 times
+that to count. The other thresholds are common practice, no source.
 """
 from __future__ import annotations
 
@@ -48,8 +51,8 @@ WARNING_FLAGS = (
     "saturated", "low_snr", "record_length_mismatch", "pretrigger_mismatch", "temperature_out_of_range",
     "excitation_mismatch", "cycles_mismatch",
 )
-NO_SIGNAL_DB = 6.0
-LOW_SNR_MARGIN_DB = 6.0
+NO_SIGNAL_FACTOR = 1.5
+LOW_SNR_MARGIN_DB = 0.0
 SATURATION_FRACTION = 0.98
 CLIP_RUN = 3
 
@@ -105,11 +108,15 @@ def _unit_factor_v(family: Family) -> float | None:
 def _runs_at_peak(x: np.ndarray, peak: np.ndarray) -> np.ndarray:
     """Longest run of consecutive samples with |x| within 1e-6 (relative) of each row's peak."""
     at = np.abs(x) >= peak[:, None] * (1.0 - 1e-6)
-    # run length via cumulative sums reset at False
-    n = at.shape[-1]
-    idx = np.arange(n)[None, :]
-    last_false = np.maximum.accumulate(np.where(~at, idx, -1), axis=-1)
-    return (idx - last_false).max(axis=-1)
+    out = np.ones(x.shape[0], dtype=int)
+    cand = np.flatnonzero(at.sum(-1) >= CLIP_RUN)  # only rows with enough samples at the peak
+    if cand.size:
+        a = at[cand]
+        n = a.shape[-1]
+        idx = np.arange(n)[None, :]
+        last_false = np.maximum.accumulate(np.where(~a, idx, -1), axis=-1)
+        out[cand] = (idx - last_false).max(axis=-1)
+    return out
 
 
 def assess_quality_arrays(
@@ -134,10 +141,16 @@ def assess_quality_arrays(
     i_s0 = windows["S0"].indices(fs, pre, n)
     i_a0 = windows["A0"].indices(fs, pre, n)
     need = int(np.ceil((windows["A0"].stop_s + pre) * fs))
-    finite = np.isfinite(x).all(-1)
-    xf = np.where(np.isfinite(x), x, 0.0)
-    peak = np.abs(xf).max(-1)
-    ptp = xf.max(-1) - xf.min(-1)
+    hi_v, lo_v = x.max(-1), x.min(-1)  # NaN propagates: a cheap finiteness screen
+    finite = np.isfinite(hi_v) & np.isfinite(lo_v)
+    if finite.all():
+        xf = x
+    else:
+        finite = np.isfinite(x).all(-1)
+        xf = np.where(np.isfinite(x), x, 0.0)
+        hi_v, lo_v = xf.max(-1), xf.min(-1)
+    peak = np.maximum(hi_v, -lo_v)
+    ptp = hi_v - lo_v
     run = _runs_at_peak(xf, peak)
     # SNR estimate
     n_pre = int(round(pre * fs))
@@ -152,13 +165,28 @@ def assess_quality_arrays(
     with np.errstate(divide="ignore", invalid="ignore"):
         snr = 20.0 * np.log10(sig / noise)
     snr = np.where(noise > 0, snr, np.where(sig > 0, np.inf, -np.inf))
+    m_win = max(hi - lo, 2)
+    no_signal_db = 20.0 * np.log10(NO_SIGNAL_FACTOR * np.sqrt(2.0 * np.log(m_win)))
     unit_v = _unit_factor_v(family)
     rail_v = acq.full_scale * unit_v if unit_v is not None else None
     mat = family.build_material()
     fam_fs = acq.sample_rate_hz
     fam_khz = family.excitation.centre_frequency_khz
+    exc = None if excitation_khz is None else np.broadcast_to(np.asarray(excitation_khz, dtype=float), (n_rows,))
+    cyc = None if cycles is None else np.broadcast_to(np.asarray(cycles, dtype=float), (n_rows,))
+    row_ok = finite & (ptp > 0) & (run < CLIP_RUN) & (snr >= family.domain.snr_db[0] - LOW_SNR_MARGIN_DB)
+    row_ok &= np.isfinite(temps) & (temps >= env.min_temperature_c) & (temps <= env.max_temperature_c)
+    if rail_v is not None:
+        row_ok &= peak < SATURATION_FRACTION * rail_v
+    if exc is not None:
+        row_ok &= ~(np.isfinite(exc) & (np.abs(exc - fam_khz) > 0.02 * fam_khz))
+    if cyc is not None:
+        row_ok &= ~(np.isfinite(cyc) & (np.abs(cyc - family.excitation.cycles) > 1e-6))
+    global_ok = abs(fs - fam_fs) <= 1e-3 * fam_fs and n == acq.record_length and abs(pre - acq.pretrigger_s) * fs <= 1.0
     for i, rep in enumerate(reports):
         rep.snr_db = float(snr[i]) if finite[i] else float("nan")
+        if global_ok and row_ok[i]:
+            continue
         if not finite[i]:
             bad = int((~np.isfinite(x[i])).sum())
             rep.add("non_finite", f"{bad} sample(s) are NaN or inf; the digitiser record is corrupt.")
@@ -198,20 +226,20 @@ def assess_quality_arrays(
                 rep.add("saturated",
                         f"peak |amplitude| {peak[i]:.4g} V reaches {100 * peak[i] / rail_v:.0f} % of the "
                         f"full scale ({rail_v:g} V); amplitude features may be compressed.")
-            if snr[i] < NO_SIGNAL_DB:
+            if snr[i] < no_signal_db:
                 rep.add("no_signal",
                         f"no packet above the noise in the S0/A0 windows (SNR estimate {snr[i]:.1f} dB < "
-                        f"{NO_SIGNAL_DB:g} dB); check the transmitter and the coupling.")
+                        f"{no_signal_db:.1f} dB, what noise alone reaches); check the transmitter and the coupling.")
             elif snr[i] < family.domain.snr_db[0] - LOW_SNR_MARGIN_DB:
                 rep.add("low_snr",
                         f"SNR estimate {snr[i]:.1f} dB is below the family's range "
                         f"({family.domain.snr_db[0]:g} to {family.domain.snr_db[1]:g} dB).")
-        if excitation_khz is not None:
-            e = np.broadcast_to(np.asarray(excitation_khz, dtype=float), (n_rows,))[i]
+        if exc is not None:
+            e = exc[i]
             if np.isfinite(e) and abs(e - fam_khz) > 0.02 * fam_khz:
                 rep.add("excitation_mismatch", f"excitation_khz = {e:g} differs from the family's {fam_khz:g} kHz.")
-        if cycles is not None:
-            c = np.broadcast_to(np.asarray(cycles, dtype=float), (n_rows,))[i]
+        if cyc is not None:
+            c = cyc[i]
             if np.isfinite(c) and abs(c - family.excitation.cycles) > 1e-6:
                 rep.add("cycles_mismatch", f"cycles = {c:g} differs from the family's {family.excitation.cycles:g}.")
     return reports

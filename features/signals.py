@@ -19,6 +19,7 @@ __all__ = [
     "tukey_gate",
     "parabolic_peak",
     "analytic_from_rfft",
+    "decimated_analytic",
     "ModeWindow",
     "mode_windows",
     "excitation_band_hz",
@@ -151,6 +152,25 @@ def analytic_from_rfft(spec: np.ndarray, n_fft: int) -> np.ndarray:
     full[..., :half] = spec
     full[..., :half] *= _analytic_multiplier(n_fft)[:half]
     return sfft.ifft(full, axis=-1)
+
+
+def decimated_analytic(spec: np.ndarray, n_fft: int, stride: int) -> np.ndarray:
+    """Analytic signal at every ``stride``-th sample from ``rfft(x, n_fft)``.
+
+    The positive-frequency bins below ``fs / stride`` are doubled and folded onto
+    ``n_fft / stride`` bins (sampling every stride-th point aliases bin k onto
+    k mod n_fft/stride), so one short inverse FFT gives a(stride m) exactly for signals
+    whose content lies below fs / stride; content above is dropped. ``n_fft`` must be a
+    multiple of ``stride`` (else stride 1 is used).
+    """
+    if stride <= 1 or n_fft % stride:
+        return analytic_from_rfft(spec, n_fft)[..., ::max(1, stride)] if stride > 1 else analytic_from_rfft(spec, n_fft)
+    m = n_fft // stride
+    full = np.zeros(spec.shape[:-1] + (m,), dtype=complex)
+    k = min(m, spec.shape[-1])
+    full[..., :k] = spec[..., :k]
+    full[..., 1:k] *= 2.0
+    return sfft.ifft(full, axis=-1) * (m / n_fft)
 
 
 def tukey_gate(n_samples: int, start: int, stop: int, *, taper_samples: int) -> np.ndarray:
