@@ -23,7 +23,10 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-__all__ = ["TrainConfig", "TrainResult", "fit_bundle", "evaluate_bundle", "default_feature_columns"]
+__all__ = [
+    "TrainConfig", "TrainResult", "fit_bundle", "evaluate_bundle", "default_feature_columns", "train_model",
+    "read_measured", "mismatch_study", "shifted_family", "campaign_features", "format_summary",
+]
 
 log = logging.getLogger(__name__)
 
@@ -47,7 +50,9 @@ class TrainConfig:
     gp_points: int = 600
     gp_features: int = 6
     oof_folds: int = 3
-    n_jobs: int = 2
+    # LightGBM threads. 1 by default: OpenMP threads spin-wait, and on a shared 2-core machine two of
+    # them ran 10-100x slower than one (measured); parallelism, if any, goes over targets instead
+    n_jobs: int = 1
     mismatch_estimators: int = 100
     monotone_tolerance: float = 1e-6
 
@@ -264,3 +269,285 @@ def evaluate_bundle(bundle, features: pd.DataFrame, targets: pd.DataFrame, *, gr
         out[t] = r
     out["in_family_false_alarm_rate"] = float(1.0 - pred["in_family"].mean()) if len(pred) else math.nan
     return out
+
+
+# ---------------------------------------------------------------------------
+# campaign -> bundle
+# ---------------------------------------------------------------------------
+#: Shifted geometries of the mismatch study: (name, what changes, how much).
+DEFAULT_SHIFTS = (
+    ("flange thickness +15 %", "thickness", 1.15),
+    ("path length +10 %", "spacing", 1.10),
+    ("alloy swapped", "alloy", None),
+)
+
+
+def _load_family(family):
+    from features.family import Family, load_family
+
+    if isinstance(family, Family):
+        return family, None
+    p = Path(family)
+    return load_family(p), p.read_text()
+
+
+def shifted_family(family, what: str, factor: float | None):
+    """A copy of ``family`` with its flange thickness, path length or alloy changed (mismatch study)."""
+    from features.family import family_from_mapping
+
+    data = family.model_dump(mode="json", exclude_none=True)
+    data["family"]["name"] = f"{family.name}-shifted"
+    if what == "thickness":
+        data["section"]["flange_thickness_mm"] = round(data["section"]["flange_thickness_mm"] * factor, 6)
+    elif what == "spacing":
+        data["path"]["transducer_spacing_mm"] = round(data["path"]["transducer_spacing_mm"] * factor, 6)
+    elif what == "alloy":
+        current = data["material"].get("builtin")
+        data["material"] = {"builtin": "al-7075-t6" if current != "al-7075-t6" else "al-2024-t3"}
+    else:
+        raise ValueError(f"unknown shift {what!r}; use thickness, spacing or alloy")
+    return family_from_mapping(data, where=f"shifted family ({what})")
+
+
+def campaign_features(family, campaign, *, progress: bool = True, n_jobs: int = 1) -> pd.DataFrame:
+    """Feature table of every case of ``campaign`` (extractor array path, chunk by chunk)."""
+    from tqdm.auto import tqdm
+
+    from features.extractor import FeatureExtractor
+
+    ex = FeatureExtractor(family)
+    parts = []
+    n_chunks = len(campaign.manifest.get("chunks", [])) or None
+    for cases, waves, bases in tqdm(campaign.iter_chunks(), total=n_chunks, desc="features", disable=not progress):
+        parts.append(ex.extract_batch(
+            waves, bases, temperature_c=cases["temperature_c"].to_numpy(dtype=float),
+            baseline_temperature_c=cases["baseline_temperature_c"].to_numpy(dtype=float), n_jobs=n_jobs,
+            sample_rate_hz=campaign.sample_rate_hz, pretrigger_s=campaign.pretrigger_s,
+            path_id=cases["specimen_id"].astype(str).to_numpy(), on_reject="nan"))
+    return pd.concat(parts, ignore_index=True)
+
+
+def _cached_features(family, campaign, cache_dir: Path, *, progress: bool, n_jobs: int) -> pd.DataFrame:
+    from features.atomic import atomic_path
+    from features.schema import FEATURE_SCHEMA_VERSION
+
+    f = cache_dir / f"features_{campaign.fingerprint}_{family.fingerprint}_v{FEATURE_SCHEMA_VERSION}.parquet"
+    if f.is_file():
+        df = pd.read_parquet(f)
+        if len(df) == len(campaign.cases):
+            return df
+    df = campaign_features(family, campaign, progress=progress, n_jobs=n_jobs)
+    with atomic_path(f, suffix=".parquet.part") as tmp:
+        df.to_parquet(tmp, index=False)
+    return df
+
+
+def read_measured(csv_path, family) -> tuple[pd.DataFrame, pd.DataFrame, np.ndarray]:
+    """Features, targets and groups (path) of measured cases listed in a CSV.
+
+    Columns: ``file`` (capture, relative to the CSV), target columns (any of ``max_loss_pct,
+    max_loss_mm, mean_loss_pct``), optional ``path_id`` (else the capture's own) and optional
+    ``baseline`` (baseline capture per row). Without ``baseline``, the rows of a path whose
+    targets are all zero serve as that path's baselines (and are not used as cases).
+    """
+    from features.extractor import FeatureExtractor
+    from features.io import read_capture
+    from models.bundle import TARGETS
+
+    csv_path = Path(csv_path)
+    if not csv_path.is_file():
+        raise ValueError(f"measured CSV {str(csv_path)!r} does not exist")
+    tab = pd.read_csv(csv_path)
+    if "file" not in tab.columns:
+        raise ValueError(f"{csv_path}: needs a 'file' column (capture path relative to the CSV); "
+                         f"got columns {list(tab.columns)}")
+    tcols = [t for t in TARGETS if t in tab.columns]
+    if not tcols:
+        raise ValueError(f"{csv_path}: needs at least one target column of {list(TARGETS)}; got {list(tab.columns)}")
+    root = csv_path.parent
+    caps = [read_capture(root / str(f)) for f in tab["file"]]
+    paths = (tab["path_id"].astype(str).tolist() if "path_id" in tab.columns
+             else [c.path_id or f"row{i}" for i, c in enumerate(caps)])
+    ex = FeatureExtractor(family)
+    rows, keep = [], []
+    if "baseline" in tab.columns:
+        for i, c in enumerate(caps):
+            rows.append(ex.extract(c, read_capture(root / str(tab["baseline"].iloc[i]))))
+            keep.append(i)
+    else:
+        zero = (tab[tcols].fillna(-1) == 0).all(axis=1).to_numpy()
+        base = {}
+        for i in np.flatnonzero(zero):
+            base.setdefault(paths[i], []).append(caps[i])
+        for i, c in enumerate(caps):
+            if zero[i]:
+                continue
+            if paths[i] not in base:
+                raise ValueError(f"{csv_path}: row {i + 2} (path {paths[i]!r}) has no baseline: add a 'baseline' "
+                                 f"column or a row of that path with zero loss")
+            rows.append(ex.extract(c, base[paths[i]]))
+            keep.append(i)
+    if not rows:
+        raise ValueError(f"{csv_path}: no measured cases left after taking out the baselines")
+    feats = pd.DataFrame(rows)
+    feats["path_id"] = [paths[i] for i in keep]
+    return feats, tab.iloc[keep][tcols].reset_index(drop=True), np.asarray([paths[i] for i in keep])
+
+
+def _auroc(p_in, p_out) -> float:
+    from sklearn.metrics import roc_auc_score
+
+    y = np.r_[np.zeros(len(p_in)), np.ones(len(p_out))]
+    return float(roc_auc_score(y, -np.r_[p_in, p_out]))
+
+
+def mismatch_study(bundle, family, p_in_family, *, shifts=DEFAULT_SHIFTS, n_cases: int = 120, seed: int = 0,
+                   work_dir: Path, progress: bool = False) -> dict:
+    """AUROC and flag rate of the detector on small campaigns simulated with shifted geometry."""
+    from training.campaign import load_campaign, run_campaign
+
+    out = {}
+    for name, what, factor in shifts:
+        fam_s = shifted_family(family, what, factor)
+        d = work_dir / f"shift_{what}_{factor}"
+        if not (d / "manifest.json").is_file() or len(load_campaign(d).cases) != n_cases:
+            run_campaign(fam_s, n_cases, d, seed=seed, progress=progress)
+        camp = load_campaign(d)
+        # the field processes a shifted structure with the configured family: extract with `family`
+        feats = campaign_features(family, camp, progress=False)
+        pred = bundle.predict_frame(feats)
+        p = pred["mismatch_p_value"].to_numpy(dtype=float)
+        flagged = ~pred["in_family"].to_numpy(dtype=bool)
+        out[name] = {"auroc": _auroc(p_in_family, p), "flag_rate": float(flagged.mean()), "n": int(len(p)),
+                     "change": what, "factor": factor}
+    return out
+
+
+def train_model(family, campaign_dir, out_dir, *, measured_csv=None, tracking_uri=None, random_state=0,
+                progress=True, config: TrainConfig | None = None, track: bool = True, shift_study: bool = True,
+                shift_cases: int = 120, n_jobs: int = 1) -> TrainResult:
+    """Features, fit, calibrate, evaluate, write the bundle (next ``vNNN`` of ``out_dir``), log the run.
+
+    Parameters
+    ----------
+    family : Family or path of the family TOML
+    campaign_dir : folder written by :func:`training.campaign.run_campaign` for this family
+    out_dir : model store; the bundle goes to its next free ``vNNN`` folder (nothing overwritten)
+    measured_csv : optional CSV of measured cases (see :func:`read_measured`); when given, the
+        bands are recalibrated on them (CV+) and a residual correction is chosen by grouped CV
+    tracking_uri : MLflow URI (default ``sqlite:///mlflow.db`` in the working directory)
+    track : False skips MLflow entirely
+    shift_study : simulate small shifted-geometry campaigns to measure the mismatch AUROC
+    """
+    from features.conventional import conventional_estimate_frame
+    from features.schema import FEATURE_SCHEMA_VERSION, describe_features, feature_columns
+    from models.bundle import TARGETS
+    from models.card import render_model_card
+    from models.conformal import grouped_split
+    from training.campaign import load_campaign
+
+    from .tracking import TrackedRun, experiment_name
+
+    t_start = time.perf_counter()
+    cfg = config or TrainConfig()
+    fam, fam_toml = _load_family(family)
+    camp = load_campaign(campaign_dir)
+    if camp.family_fingerprint != fam.fingerprint:
+        raise ValueError(f"campaign {str(campaign_dir)!r} was simulated for family fingerprint "
+                         f"{camp.family_fingerprint}, but {fam.name} has {fam.fingerprint}; "
+                         f"re-run the campaign for this family")
+    out_dir = Path(out_dir)
+    msgs: list[str] = []
+    feats = _cached_features(fam, camp, out_dir / ".cache", progress=progress, n_jobs=n_jobs)
+    cases = camp.cases.reset_index(drop=True)
+    missing = [t for t in TARGETS if t not in cases.columns]
+    if missing:
+        raise ValueError(f"campaign cases lack target column(s) {missing}")
+    cols = [c for c in feature_columns() if c in feats.columns]
+    groups = cases["specimen_id"].astype(str).to_numpy()
+    rng = np.random.default_rng(random_state)
+    test = grouped_split(groups, cfg.test_fraction, int(rng.integers(2**31 - 1)))
+    ok = feats[cols].notna().any(axis=1).to_numpy()  # rows the quality gate rejected entirely are dropped
+    if (~ok).any():
+        msgs.append(f"{int((~ok).sum())} simulated case(s) rejected by the quality gate were left out")
+    trn, tst = ~test & ok, test & ok
+    schema = {"feature_schema_version": FEATURE_SCHEMA_VERSION, "feature_columns": cols,
+              "describe": describe_features().to_dict(orient="records")}
+    bundle, diag = fit_bundle(
+        fam, feats[trn], cases.loc[trn, list(TARGETS)], groups[trn], config=cfg, feature_columns=cols,
+        random_state=int(rng.integers(2**31 - 1)), progress=progress, family_toml=fam_toml, feature_schema=schema,
+        meta={"campaign_fingerprint": camp.fingerprint, "n_cases": int(len(cases)), "random_state": random_state},
+    )
+    t_fit = time.perf_counter() - t_start
+    Ft, Ct = feats[tst].reset_index(drop=True), cases[tst].reset_index(drop=True)
+    loss_band = pd.cut(Ct["max_loss_pct"], [-np.inf, 10, 25, np.inf], labels=["loss<10%", "loss10-25%", "loss>=25%"])
+    temp_band = pd.cut(Ct["temperature_c"], [-np.inf, 10, 30, np.inf], labels=["T<10C", "T10-30C", "T>=30C"])
+    ev = evaluate_bundle(bundle, Ft, Ct, group_labels={"loss_band": loss_band.astype(str).to_numpy(),
+                                                       "temperature_band": temp_band.astype(str).to_numpy()})
+    metrics: dict[str, Any] = {"evaluation": {t: ev[t] for t in TARGETS if t in ev}}
+    conv = conventional_estimate_frame(fam, Ft)["mean_loss_pct"].to_numpy(dtype=float)
+    conv_mae = float(np.nanmean(np.abs(conv - Ct["mean_loss_pct"].to_numpy(dtype=float))))
+    metrics["conventional_mae_mean_loss_pct"] = conv_mae
+    metrics["conventional_ratio"] = conv_mae / max(ev["mean_loss_pct"]["mae"], 1e-12)
+    p_in = bundle.predict_frame(Ft)["mismatch_p_value"].to_numpy(dtype=float)
+    metrics["mismatch"] = {"false_alarm_rate": cfg.false_alarm_rate,
+                           "in_family_false_alarm_rate": ev["in_family_false_alarm_rate"]}
+    if shift_study:
+        metrics["mismatch"]["shifts"] = mismatch_study(bundle, fam, p_in, n_cases=shift_cases,
+                                                       seed=random_state + 1, work_dir=out_dir / ".cache",
+                                                       progress=progress)
+    if measured_csv is not None:
+        mf, mt, mg = read_measured(measured_csv, fam)
+        bundle = bundle.recalibrate(mf, mt, groups=mg, random_state=random_state)
+        metrics["measured"] = {t: {"n": r["n"], "correction": r["correction"], "mae_without": r["cv_mae"]["none"],
+                                   "mae_with": r["cv_mae"][r["correction"]]}
+                               for t, r in bundle.meta["recalibration"].items()}
+    metrics["timings_s"] = {"fit": t_fit, "total_before_save": time.perf_counter() - t_start}
+    bundle.metrics.update(metrics)
+    bundle.model_card = render_model_card(bundle)
+    path = bundle.save_version(out_dir)
+    bundle.model_card = render_model_card(bundle)  # version number now final
+    result = TrainResult(bundle_path=path, metrics=bundle.metrics, bundle=bundle, messages=msgs)
+    if track:
+        with TrackedRun(experiment_name(fam.name), run_name=f"{fam.name} {path.name}", tracking_uri=tracking_uri,
+                        tags={"family": fam.name, "family_fingerprint": fam.fingerprint,
+                              "campaign_fingerprint": camp.fingerprint, "bundle_version": path.name,
+                              "calibration_source": bundle.calibration_source}) as run:
+            run.log_params({**{k: v for k, v in cfg.__dict__.items()}, "n_cases": len(cases),
+                            "random_state": random_state, "measured_csv": str(measured_csv or "")})
+            run.log_metrics({k: v for k, v in bundle.metrics.items() if k not in ("fit", "gp")})
+            run.log_artifacts(path, artifact_path="bundle")
+            from models.registry import register_bundle
+
+            result.model_version = register_bundle(path, fam.name, run_id=run.run_id, tracking_uri=tracking_uri)
+            result.run_id = run.run_id
+    return result
+
+
+def format_summary(result: TrainResult) -> str:
+    """Plain-text evaluation summary (what ``waneguide train`` prints)."""
+    m = result.metrics
+    lines = [f"bundle: {result.bundle_path}", "",
+             "held-out simulated cases (unseen specimens):",
+             f"  {'target':<15}{'MAE':>9}{'RMSE':>9}{'coverage':>10}{'width':>9}{'width/range':>12}"]
+    for t, r in m.get("evaluation", {}).items():
+        lines.append(f"  {t:<15}{r['mae']:>9.3f}{r['rmse']:>9.3f}{r['coverage']:>10.3f}{r['mean_width']:>9.3f}"
+                     f"{r['relative_width']:>12.3f}")
+    if "conventional_ratio" in m:
+        lines.append(f"  conventional single-mode MAE / model MAE (mean_loss_pct): {m['conventional_ratio']:.2f}")
+    mm = m.get("mismatch", {})
+    if mm:
+        lines.append(f"mismatch: stated false-alarm rate {mm['false_alarm_rate']:g}, "
+                     f"observed in family {mm['in_family_false_alarm_rate']:.3f}")
+        for name, r in (mm.get("shifts") or {}).items():
+            lines.append(f"  {name:<24} AUROC {r['auroc']:.3f}  flagged {r['flag_rate']:.2f}")
+    for t, r in (m.get("measured") or {}).items():
+        lines.append(f"measured {t}: MAE {r['mae_without']:.3f} (simulated model) -> {r['mae_with']:.3f} "
+                     f"({r['correction']}), n = {r['n']}")
+    cal = result.bundle.calibration_source if result.bundle is not None else "?"
+    lines.append(f"bands calibrated on {cal} cases")
+    if result.model_version:
+        lines.append(f"registered as waneguide-{result.bundle.family.name} version {result.model_version} "
+                     f"(alias in-service), run {result.run_id}")
+    lines += result.messages
+    return "\n".join(lines)
