@@ -44,6 +44,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import time
 import zipfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -57,7 +58,7 @@ from features.capture import Capture
 from features.family import Family, family_from_mapping, load_family
 
 from .forward import FORWARD_MODEL_VERSION, ForwardModel
-from .profiles import TRUTH_COLUMNS, build_profile, sample_site
+from .profiles import TRUTH_COLUMNS, sample_site, site_shape, truth_arrays
 
 __all__ = [
     "CAMPAIGN_FORMAT_VERSION",
@@ -206,35 +207,37 @@ def _simulate_chunk(fm: ForwardModel, plan: pd.DataFrame, seed: int) -> dict[str
     t_nom = fm.nominal_thickness_m
     spec_rows = plan.drop_duplicates("specimen_index")
     sites = {int(r.specimen_index): _site(family, fm, r, seed) for r in spec_rows.itertuples()}
-    thick = np.empty((n, fm.x_m.size))
-    truth = {c: np.empty(n) for c in TRUTH_COLUMNS}
-    for i, r in enumerate(plan.itertuples()):
-        prof = build_profile(fm.x_m, t_nom, sites[int(r.specimen_index)], max_loss_pct=float(r.max_loss_target_pct),
-                             path_length_m=fm.path_length_m)
-        thick[i] = prof.thickness_m
-        for k, v in prof.truth().items():
-            truth[k][i] = v
+    # one unit-depth loss shape per specimen; each state scales it to its own depth
+    shapes = {j: site_shape(fm.x_m, patches) for j, patches in sites.items()}
+    counts = {j: len({p.site for p in patches}) for j, patches in sites.items()}
+    spec_idx = plan["specimen_index"].to_numpy(np.int64)
+    depth_m = plan["max_loss_target_pct"].to_numpy(float) / 100.0 * t_nom
+    loss = np.stack([shapes[int(j)] for j in spec_idx]) * depth_m[:, None]
+    thick = t_nom - loss
+    truth = truth_arrays(loss, np.full(fm.x_m.size, fm.segment_m), t_nom,
+                         np.array([counts[int(j)] for j in spec_idx]))
+    del loss
     col = lambda df, c: df[c].to_numpy(dtype=float)  # noqa: E731
     gain = 10.0 ** ((col(plan, "coupling_tx_db") + col(plan, "coupling_rx_db") + col(plan, "coupling_drift_tx_db")
                      + col(plan, "coupling_drift_rx_db")) / 20.0)
     clean = fm.synthesize(thick, col(plan, "temperature_c"), gain=gain, jitter_s=col(plan, "jitter_s"),
                           attenuation_db_per_m=col(plan, "attenuation_db_per_m"),
                           echo_reflection=col(plan, "echo_reflection"), crosstalk_db=col(plan, "crosstalk_db"),
-                          ringing_db=col(plan, "ringing_db"))
+                          ringing_db=col(plan, "ringing_db"), dtype=np.float32)
     rngs = [np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_TAG_CASE_NOISE, int(i))))
             for i in plan["case_index"]]
-    waves = fm.finish(clean, col(plan, "snr_db"), rngs, out=clean).astype(np.float32)
-    del clean
+    waves = fm.finish(clean, col(plan, "snr_db"), rngs, out=clean)
     base_gain = 10.0 ** ((col(spec_rows, "coupling_tx_db") + col(spec_rows, "coupling_rx_db")) / 20.0)
     m = len(spec_rows)
     base_clean = fm.synthesize(np.full((m, fm.x_m.size), t_nom), col(spec_rows, "baseline_temperature_c"),
                                gain=base_gain, jitter_s=col(spec_rows, "baseline_jitter_s"),
                                attenuation_db_per_m=col(spec_rows, "attenuation_db_per_m"),
                                echo_reflection=col(spec_rows, "echo_reflection"),
-                               crosstalk_db=col(spec_rows, "crosstalk_db"), ringing_db=col(spec_rows, "ringing_db"))
+                               crosstalk_db=col(spec_rows, "crosstalk_db"), ringing_db=col(spec_rows, "ringing_db"),
+                               dtype=np.float32)
     brngs = [np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_TAG_BASE_NOISE, int(j))))
              for j in spec_rows["specimen_index"]]
-    bases = fm.finish(base_clean, col(spec_rows, "baseline_snr_db"), brngs, out=base_clean).astype(np.float32)
+    bases = fm.finish(base_clean, col(spec_rows, "baseline_snr_db"), brngs, out=base_clean)
     spec_pos = {int(j): k for k, j in enumerate(spec_rows["specimen_index"])}
     out = {
         "case_index": plan["case_index"].to_numpy(np.int64),
@@ -258,7 +261,10 @@ def _write_npz(path: Path, arrays: dict[str, np.ndarray]) -> str:
                 info.compress_type = zipfile.ZIP_STORED
                 info.external_attr = 0o644 << 16
                 with zf.open(info, "w", force_zip64=True) as fh:
-                    np.lib.format.write_array(fh, np.ascontiguousarray(arrays[name]), allow_pickle=False)
+                    arr = np.asarray(arrays[name])
+                    if not arr.flags.c_contiguous:
+                        arr = np.ascontiguousarray(arr)
+                    np.lib.format.write_array(fh, arr, allow_pickle=False)
     return _sha256(path)
 
 
@@ -345,8 +351,9 @@ def _existing_chunk(path: Path, fingerprint: str):
         return None
     try:
         with np.load(path, allow_pickle=False) as z:
-            if str(z["campaign_fingerprint"]) != fingerprint:
-                raise ValueError(f"{path} belongs to another campaign (fingerprint {z['campaign_fingerprint']}); "
+            theirs = str(z["campaign_fingerprint"].reshape(-1)[0])
+            if theirs != fingerprint:
+                raise ValueError(f"{path} belongs to another campaign (fingerprint {theirs}); "
                                  "choose an empty --out folder.")
             truth = _truth_of({k: z[k] for k in ["case_index", *[f"truth_{c}" for c in TRUTH_COLUMNS]]})
     except (OSError, zipfile.BadZipFile, KeyError, EOFError):
@@ -401,6 +408,13 @@ def run_campaign(
     if isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1:
         raise ValueError(f"workers must be a positive whole number; got {workers!r}.")
     chunk_size = int(chunk_size)
+    if scheduler is not None and isinstance(scheduler, str) and not scheduler.startswith(("tcp://", "tls://")):
+        raise ValueError(f"scheduler must be a Dask address like tcp://127.0.0.1:8786 or a Client; got {scheduler!r}.")
+    if scheduler is not None and not isinstance(scheduler, str):
+        from dask.distributed import Client
+
+        if not isinstance(scheduler, Client):
+            raise ValueError(f"scheduler must be a Dask address or a dask.distributed.Client; got {type(scheduler).__name__}.")
     out = Path(out_dir)
     fingerprint = campaign_fingerprint(family, n, seed=seed, chunk_size=chunk_size)
     old = _read_manifest(out)
@@ -413,7 +427,10 @@ def run_campaign(
             "nothing was overwritten. Choose another --out folder."
         )
     if old is not None and old.get("status") == "complete" and (out / "cases.parquet").exists():
-        return load_campaign(out)
+        camp = load_campaign(out)
+        camp.run_info = {"computed_chunks": 0, "reused_chunks": int(old.get("n_chunks", 0)), "seconds": 0.0}
+        return camp
+    started = time.perf_counter()
     (out / "chunks").mkdir(parents=True, exist_ok=True)
     for stale in (out / "chunks").glob(".chunk_*.part"):
         stale.unlink()  # our own interrupted temporary files
@@ -467,7 +484,10 @@ def run_campaign(
     man = _manifest(family, fm, n, seed, chunk_size, fingerprint, "complete", chunks)
     man["columns"] = list(cases.columns)
     _write_manifest(out, man)
-    return load_campaign(out)
+    camp = load_campaign(out)
+    camp.run_info = {"computed_chunks": len(todo), "reused_chunks": n_chunks - len(todo),
+                     "seconds": time.perf_counter() - started}
+    return camp
 
 
 def _write_parquet(df: pd.DataFrame, path: Path) -> None:
@@ -484,9 +504,11 @@ def _run_dask(scheduler, fm, slices, seed, out, fingerprint, results, bar) -> No
 
     own = not isinstance(scheduler, Client)
     if own:
-        if not isinstance(scheduler, str) or not scheduler.startswith(("tcp://", "tls://", "inproc://", "ucx://")):
-            raise ValueError(f"scheduler must be a Dask address like tcp://127.0.0.1:8786 or a Client; got {scheduler!r}.")
-        client = Client(scheduler, timeout="20s", set_as_default=False)
+        try:
+            client = Client(scheduler, timeout="20s", set_as_default=False)
+        except (OSError, TimeoutError) as exc:
+            raise ValueError(f"could not reach the Dask scheduler at {scheduler} ({exc}); start it, or drop "
+                             "--scheduler to run on this machine. Finished chunks are kept.") from None
     else:
         client = scheduler
     try:
@@ -544,6 +566,28 @@ class Campaign:
 
     def __post_init__(self) -> None:
         self._cache: tuple[int, dict] | None = None
+        self.run_info: dict | None = None  # set by run_campaign: computed/reused chunks, seconds
+
+    def summary(self) -> str:
+        """A few lines describing the campaign (what `waneguide simulate` prints)."""
+        c = self.cases
+        size = sum(p.stat().st_size for p in self.path.rglob("*") if p.is_file())
+        lines = [
+            f"campaign {self.fingerprint} of family {self.family.name} (fingerprint {self.family_fingerprint}), "
+            f"seed {self.seed}",
+            f"  {len(c)} cases on {c['specimen_id'].nunique()} specimens, {len(self.manifest['chunks'])} chunk(s), "
+            f"{self.n_samples} samples at {self.sample_rate_hz / 1e6:g} MHz, {size / 1e6:.1f} MB on disk",
+            f"  max loss {c['max_loss_pct'].min():.1f} to {c['max_loss_pct'].max():.1f} % "
+            f"(mean {c['max_loss_pct'].mean():.1f} %), {int((c['max_loss_pct'] == 0).sum())} pristine state(s)",
+            f"  temperature {c['temperature_c'].min():.1f} to {c['temperature_c'].max():.1f} degC, "
+            f"SNR {c['snr_db'].min():.1f} to {c['snr_db'].max():.1f} dB",
+            "  simulated with the free-plate S0/A0 model (approximations listed in training.forward)",
+        ]
+        if self.run_info is not None:
+            ri = self.run_info
+            lines.insert(1, f"  {ri['computed_chunks']} chunk(s) computed, {ri['reused_chunks']} kept from an "
+                            f"earlier run, {ri['seconds']:.1f} s")
+        return "\n".join(lines)
 
     @property
     def fingerprint(self) -> str:

@@ -260,8 +260,9 @@ class ForwardModel:
         ringing_db=None,
         modes: Sequence[str] = MODES,
         echoes: bool = True,
+        dtype=np.float64,
     ) -> np.ndarray:
-        """Noise-free waveforms of a batch of cases [V], shape (n, n_samples), float64.
+        """Noise-free waveforms of a batch of cases [V], shape (n, n_samples), ``dtype``.
 
         Parameters
         ----------
@@ -276,6 +277,8 @@ class ForwardModel:
         modes : subset of ("S0", "A0")
         echoes : bool
             Include the end and edge echoes.
+        dtype : float64 or float32
+            float32 runs the inverse FFT in single precision (campaigns store float32).
         """
         tb = self._tables
         thick = np.atleast_2d(np.asarray(thickness_m, dtype=float))
@@ -319,26 +322,27 @@ class ForwardModel:
         fc = self.family.excitation.centre_frequency_hz
         a_np = (att_db / (20 * np.log10(np.e)))[:, None] * (f / fc)[None, :]  # Np/m, (n, F)
         n_paths = len(_PATHS) if echoes else 1
+        mode_ids = [_mode_index(m) for m in modes]
+        phis = {m: ((W @ tb.K[m]) / s[:, None], (Wn @ tb.K[m]) / s[:, None]) for m in mode_ids}
         Y = np.zeros((n, f.size), complex)
-        for mode in modes:
-            m = _mode_index(mode)
-            Kinv_s = tb.K[m]  # (G, F)
-            phi_direct = (W @ Kinv_s) / s[:, None]
-            k_nom = (Wn @ Kinv_s) / s[:, None]
-            acc = np.zeros((n, f.size), complex)
-            for p in range(n_paths):
-                r = self.path_lengths_m[p]
-                if p == 0:
-                    phi = phi_direct
-                    amp = np.ones(n)
-                else:
-                    phi = phi_direct * self.sec_theta[p] + k_nom * self.end_extra_m[p]
-                    amp = refl * math.sqrt(self.path_lengths_m[0] / r)
-                if not np.any(amp):
-                    continue
-                att = np.exp(-a_np * (r * e)[:, None])
-                acc += (amp[:, None] * att) * np.exp(-1j * phi)
-            Y += acc * tb.source[m][None, :]
+        z = np.empty((n, f.size), complex)
+        for p in range(n_paths):
+            r = self.path_lengths_m[p]
+            amp = np.ones(n) if p == 0 else refl * math.sqrt(self.path_lengths_m[0] / r)
+            if not np.any(amp):
+                continue
+            log_att = -a_np * (r * e)[:, None] + np.log(np.where(amp > 0, amp, 1.0))[:, None]
+            for m in mode_ids:
+                phi_direct, k_nom = phis[m]
+                phi = phi_direct if p == 0 else phi_direct * self.sec_theta[p] + k_nom * self.end_extra_m[p]
+                # amp * exp(-a r) * exp(-i Phi) as one complex exponential
+                z.real = log_att
+                z.imag = -phi
+                np.exp(z, out=z)
+                if p > 0:
+                    z *= (amp > 0)[:, None]
+                z *= tb.source[m][None, :]
+                Y += z
         Y *= gain[:, None]
         for level, shape in ((crosstalk_db, tb.crosstalk), (ringing_db, tb.ringing)):
             if level is None:
@@ -348,7 +352,8 @@ class ForwardModel:
                 Y += lin[:, None] * shape[None, :]
         if np.any(jitter):
             Y *= np.exp(-1j * omega[None, :] * jitter[:, None])
-        full = np.zeros((n, tb.n_fft // 2 + 1), complex)
+        cdtype = np.complex64 if np.dtype(dtype) == np.float32 else np.complex128
+        full = np.zeros((n, tb.n_fft // 2 + 1), cdtype)
         full[:, tb.bins] = Y
         return sfft.irfft(full, tb.n_fft, axis=1)[:, : self.n_samples]
 
@@ -366,13 +371,14 @@ class ForwardModel:
         if snr_db is not None:
             snr = np.broadcast_to(np.asarray(snr_db, dtype=float), (n,))
             sigma = self.reference_peak_v * 10.0 ** (-snr / 20.0)
-            buf = np.empty(x.shape[1])
+            buf = np.empty(x.shape[1], dtype=x.dtype if x.dtype in (np.float32, np.float64) else np.float64)
             for i in range(n):
                 if not np.isfinite(snr[i]):
                     continue
                 g = rngs[i] if isinstance(rngs, (list, tuple)) else rngs
-                g.standard_normal(out=buf)
-                x[i] += sigma[i] * buf
+                g.standard_normal(dtype=buf.dtype, out=buf)
+                buf *= sigma[i]
+                x[i] += buf
         if clip:
             np.clip(x, -self.full_scale_v, self.full_scale_v, out=x)
         acq = self.family.acquisition
@@ -466,8 +472,10 @@ def _build_tables(family: Family, n_thickness: int) -> _Tables:
     inband = np.flatnonzero(env > _BAND_FLOOR * env.max())
     inband = inband[f_rec[inband] > 0]
     f_lo, f_hi = f_rec[inband[0]], f_rec[inband[-1]]
-    # FFT length: long enough that the slowest synthesised arrival does not wrap
-    probe = fundamental_dispersion(mat, [t_nom * 0.07, t_nom], np.linspace(f_lo, f_hi, 64))
+    # FFT length: long enough that the slowest synthesised arrival does not wrap, for a path
+    # thinned all along to the domain's deepest loss (band-edge components below -60 dB may)
+    t_thin = t_nom * (1.0 - family.domain.max_loss_pct[1] / 100.0)
+    probe = fundamental_dispersion(mat, [t_thin, t_nom], np.linspace(f_lo, f_hi, 64))
     cg_min = np.nanmin(probe.group_velocity_m_s)
     d_near, d_far = family.path.end_distances_m()
     e1, e2 = family.edge_distances_m()

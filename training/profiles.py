@@ -61,6 +61,8 @@ __all__ = [
     "rough_profile",
     "multi_patch_profile",
     "build_profile",
+    "site_shape",
+    "truth_arrays",
     "sample_site",
 ]
 
@@ -141,43 +143,54 @@ class ThinningProfile:
     def segment_lengths_m(self) -> np.ndarray:
         return _segment_lengths(self.x_m, self.path_length_m)
 
+    def truth(self) -> dict[str, float]:
+        """The ground-truth columns (:data:`TRUTH_COLUMNS`)."""
+        t = truth_arrays(self.loss_m[None, :], self.segment_lengths_m, self.nominal_thickness_m,
+                         np.array([self.patch_count]))
+        return {k: (int(v[0]) if k == "patch_count" else float(v[0])) for k, v in t.items()}
+
     @property
     def max_loss_mm(self) -> float:
-        return float(max(self.loss_m.max(), 0.0) * 1e3)
+        return self.truth()["max_loss_mm"]
 
     @property
     def max_loss_pct(self) -> float:
-        return float(100.0 * max(self.loss_m.max(), 0.0) / self.nominal_thickness_m)
+        return self.truth()["max_loss_pct"]
 
     @property
     def mean_loss_pct(self) -> float:
-        w = self.segment_lengths_m
-        return float(100.0 * np.sum(w * self.loss_m) / np.sum(w) / self.nominal_thickness_m)
+        return self.truth()["mean_loss_pct"]
 
     @property
     def lost_area_mm2(self) -> float:
-        return float(np.sum(self.segment_lengths_m * self.loss_m) * 1e6)
+        return self.truth()["lost_area_mm2"]
 
     @property
     def extent_mm(self) -> float:
-        above = self.loss_m > EXTENT_THRESHOLD * self.nominal_thickness_m
-        return float(np.sum(self.segment_lengths_m[above]) * 1e3)
-
-    def truth(self) -> dict[str, float]:
-        """The ground-truth columns (:data:`TRUTH_COLUMNS`)."""
-        return {
-            "max_loss_pct": self.max_loss_pct,
-            "max_loss_mm": self.max_loss_mm,
-            "mean_loss_pct": self.mean_loss_pct,
-            "lost_area_mm2": self.lost_area_mm2,
-            "patch_count": int(self.patch_count),
-            "extent_mm": self.extent_mm,
-        }
+        return self.truth()["extent_mm"]
 
     def resample(self, x_m: np.ndarray) -> np.ndarray:
         """Thickness at other positions (linear interpolation, nominal outside) [m]."""
         return np.interp(x_m, self.x_m, self.thickness_m, left=self.nominal_thickness_m,
                          right=self.nominal_thickness_m)
+
+
+def truth_arrays(loss_m: np.ndarray, segment_lengths_m: np.ndarray, nominal_thickness_m: float,
+                 patch_count: np.ndarray) -> dict[str, np.ndarray]:
+    """Ground truth of many profiles at once: ``loss_m`` (n, S) on segments of the given lengths."""
+    loss = np.atleast_2d(loss_m)
+    w = np.asarray(segment_lengths_m, dtype=float)
+    peak = np.maximum(loss.max(axis=1), 0.0)
+    area = loss @ w
+    above = loss > EXTENT_THRESHOLD * nominal_thickness_m
+    return {
+        "max_loss_pct": 100.0 * peak / nominal_thickness_m,
+        "max_loss_mm": peak * 1e3,
+        "mean_loss_pct": 100.0 * area / w.sum() / nominal_thickness_m,
+        "lost_area_mm2": area * 1e6,
+        "patch_count": np.where(peak > 0, np.asarray(patch_count), 0).astype(np.int64),
+        "extent_mm": (above * w).sum(axis=1) * 1e3,
+    }
 
 
 # ---------------------------------------------------------------------------
@@ -284,28 +297,36 @@ def _check_common(x_m, nominal_thickness_m, path_length_m, max_loss_pct):
     return x, float(path_length_m)
 
 
+def site_shape(x_m, patches: Sequence[PatchSpec]) -> np.ndarray:
+    """Total loss of the patches (max on a side, sum over sides) scaled to a unit maximum."""
+    x = np.asarray(x_m, dtype=float)
+    top = np.zeros_like(x)
+    bottom = np.zeros_like(x)
+    for p in patches:
+        loss = p.loss(x, 1.0)
+        np.maximum(top if p.side == "top" else bottom, loss, out=top if p.side == "top" else bottom)
+    total = top + bottom
+    peak = total.max() if total.size else 0.0
+    if peak <= 0:
+        raise ValueError("the patches do not overlap the path positions x_m; move them inside [0, L].")
+    return total / peak
+
+
 def build_profile(x_m, nominal_thickness_m: float, patches: Sequence[PatchSpec], *, max_loss_pct: float,
-                  path_length_m: float | None = None) -> ThinningProfile:
-    """Combine patches (max on a side, sum over sides) and scale to ``max_loss_pct`` exactly."""
+                  path_length_m: float | None = None, shape: np.ndarray | None = None) -> ThinningProfile:
+    """Combine patches (max on a side, sum over sides) and scale to ``max_loss_pct`` exactly.
+
+    ``shape``: the precomputed :func:`site_shape` of the patches (the campaign reuses it
+    for every state of a specimen).
+    """
     x, L = _check_common(x_m, nominal_thickness_m, path_length_m, max_loss_pct)
     patches = tuple(patches)
     target = nominal_thickness_m * max_loss_pct / 100.0
     if not patches or target == 0.0:
         return ThinningProfile(x, np.full_like(x, nominal_thickness_m), nominal_thickness_m, L,
                                patch_count=0, shape="pristine", sides="one")
-    top = np.zeros_like(x)
-    bottom = np.zeros_like(x)
-    for p in patches:
-        loss = p.loss(x, 1.0)
-        if p.side == "top":
-            np.maximum(top, loss, out=top)
-        else:
-            np.maximum(bottom, loss, out=bottom)
-    total = top + bottom
-    peak = total.max()
-    if peak <= 0:
-        raise ValueError("the patches do not overlap the path positions x_m; move them inside [0, L].")
-    thickness = nominal_thickness_m - total * (target / peak)
+    unit = site_shape(x, patches) if shape is None else shape
+    thickness = nominal_thickness_m - unit * target
     shapes = {p.shape for p in patches}
     sides = "two" if {p.side for p in patches} == {"top", "bottom"} else "one"
     return ThinningProfile(x, thickness, nominal_thickness_m, L, patch_count=len({p.site for p in patches}),
