@@ -313,3 +313,21 @@ def test_bad_inputs_are_explained(family_fb2):
         simulate_capture(family_fb2, x_m=x, thickness_m=[t0, t0], temperature_c=20, rng=0, coupling_db=1.0)
     with pytest.raises(ValueError, match="mode 'S1' is not simulated"):
         simulate_capture(family_fb2, x_m=x, thickness_m=[t0, t0], temperature_c=20, rng=0, modes=("S1",))
+
+
+def test_adc_full_scale_clips_and_counts_are_quantised(family_fb2):
+    # A digitiser clips at its rail and, storing counts, records whole multiples of the count
+    # step (common practice, no source). Here a +20 dB coupling pushes the pristine peak
+    # (0.25 of full scale) to 2.5x the rail; the counts variant uses 1 mV per count.
+    fm = ForwardModel(family_fb2)
+    x = fm.simulate(_flat(fm), 20.0, coupling_db=(10.0, 10.0), **OFF)
+    assert np.abs(x).max() == pytest.approx(family_fb2.full_scale_v)
+    assert np.mean(np.abs(x) == family_fb2.full_scale_v) > 0.001
+    fam_c = _variant(family_fb2, acquisition__amplitude_units="counts", acquisition__counts_scale_v=1e-3,
+                     acquisition__full_scale=1000.0)
+    fmc = ForwardModel(fam_c)
+    assert fam_c.full_scale_v == pytest.approx(1.0)
+    y = fmc.simulate(_flat(fmc), 20.0, rng=1)
+    steps = y / 1e-3
+    np.testing.assert_allclose(steps, np.round(steps), atol=1e-9)
+    assert np.unique(np.round(steps)).size > 50

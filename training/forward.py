@@ -74,8 +74,10 @@ simulation; each item is a candidate correction):
   multiple reverberation, no web-junction reflection; cylindrical spreading;
 - attenuation proportional to frequency, same for both modes;
 - frequency bins outside the band where the source spectrum exceeds 1e-3 of
-  its peak (-60 dB) are not synthesised; the FFT is made long enough that no
-  synthesised arrival wraps round, then cut to the record length;
+  its peak (-60 dB) are not synthesised (the sharp band edge leaves -60 dB
+  ringing); the FFT is made long enough that no synthesised arrival of a path
+  thinned all along to the domain's deepest loss wraps round, then cut to the
+  record length (arrivals after the record end are lost, as on an instrument);
 - linear interpolation of the wavenumber in ln(thickness) on the grid (error
   below about 1e-5 relative for 128 nodes; see tests/test_forward.py).
 

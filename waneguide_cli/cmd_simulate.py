@@ -22,8 +22,14 @@ def register(sub) -> None:
 def run(args) -> int:
     from training.campaign import run_campaign
 
-    camp = run_campaign(args.family, args.cases, args.out, seed=args.seed, workers=args.workers,
-                        scheduler=args.scheduler, progress=True)
+    import sys
+
+    try:
+        camp = run_campaign(args.family, args.cases, args.out, seed=args.seed, workers=args.workers,
+                            scheduler=args.scheduler, progress=True)
+    except KeyboardInterrupt:
+        print(f"finished chunks are kept in {args.out}; rerun the same command to resume", file=sys.stderr)
+        raise
     print(f"wrote {camp.path}")
     print(camp.summary())
     return 0
