@@ -387,7 +387,8 @@ def run_campaign(
     scheduler : str or dask.distributed.Client, optional
         A Dask scheduler address (``tcp://host:port``) or a client: chunks are
         computed on the cluster and written here by this process (no shared
-        file system needed). Overrides ``workers``.
+        file system needed; the workers need waneguide installed). At most two
+        chunks per worker thread are in flight. Overrides ``workers``.
     chunk_size : int
         Cases per chunk file (bounds memory: about ``chunk_size * N * 40`` bytes
         per worker).
