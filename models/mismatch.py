@@ -108,8 +108,14 @@ class MismatchDetector(BaseEstimator):
         Rows used to fit MinCovDet / IsolationForest (random subset above it).
     n_estimators : int, default 200
         IsolationForest trees.
-    support_fraction : float or None
-        MinCovDet support fraction (None: (n + d + 1) / 2 points, its default).
+    support_fraction : float or None, default 0.97
+        MinCovDet support fraction. The in-family training data are simulated, hence not
+        contaminated: the covariance must span the in-family damage variation, and trimming 3 %
+        only guards against failed feature estimates. (sklearn's default, about half the points,
+        made severe in-family damage look foreign: AUROC for a +15 % thicker flange fell from
+        0.97 to 0.94-0.96 on a 2,000-case demo campaign, measured.)
+    ridge : float, default 1e-3
+        Added to the MCD covariance diagonal (standardised units) before inversion.
     random_state : int or None
 
     Attributes
@@ -117,6 +123,8 @@ class MismatchDetector(BaseEstimator):
     columns_ : ndarray of int, columns used (constant ones dropped)
     median_, scale_ : robust centring (median) and scale (IQR / 1.349) per column
     mcd_, iforest_ : fitted sklearn models
+    precision_ : inverse of the ridge-regularised MCD covariance
+    rank_deficient_ : bool, MinCovDet reported a singular covariance (collinear features)
     forest_ : dict of arrays, the IsolationForest packed for vectorised scoring (same scores as
         ``-iforest_.score_samples``, checked in tests/test_mismatch.py)
     ref_md_, ref_if_ : sorted reference scores (fitting sample)
@@ -124,7 +132,8 @@ class MismatchDetector(BaseEstimator):
     """
 
     def __init__(self, *, false_alarm_rate=0.01, calibration_fraction=0.3, max_fit_points=3000, n_estimators=200,
-                 support_fraction=None, random_state=None):
+                 support_fraction=0.97, ridge=1e-3, random_state=None):
+        self.ridge = ridge
         self.false_alarm_rate = false_alarm_rate
         self.calibration_fraction = calibration_fraction
         self.max_fit_points = max_fit_points
@@ -158,9 +167,17 @@ class MismatchDetector(BaseEstimator):
         if len(fit) > self.max_fit_points:
             fit = fit[: int(self.max_fit_points)]
         seed = lambda: int(rng.integers(2**31 - 1))  # noqa: E731
-        self.mcd_ = MinCovDet(support_fraction=self.support_fraction, random_state=seed()).fit(Z[fit])
+        import warnings
+
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            self.mcd_ = MinCovDet(support_fraction=self.support_fraction, random_state=seed()).fit(Z[fit])
+        self.rank_deficient_ = any("not full rank" in str(w.message) for w in caught)
+        # ridge of 1e-3 (robust-standardised units): a direction with no spread in the family
+        # (collinear features) gets weight 1e3 instead of being ignored by a pseudo-inverse
+        self.precision_ = np.linalg.inv(self.mcd_.covariance_ + self.ridge * np.eye(Z.shape[1]))
         self.iforest_ = IsolationForest(n_estimators=int(self.n_estimators), random_state=seed(), n_jobs=1).fit(Z[fit])
-        self.ref_md_ = np.sort(self.mcd_.mahalanobis(Z[fit]))
+        self.ref_md_ = np.sort(self._md(Z[fit]))
         self.forest_ = _pack_forest(self.iforest_)
         self.ref_if_ = np.sort(_forest_score(self.forest_, Z[fit]))
         self.cal_scores_ = np.sort(self._combined(Z[cal]))
@@ -172,11 +189,16 @@ class MismatchDetector(BaseEstimator):
         Z = np.where(np.isfinite(Z), Z, 0.0)  # missing -> family median (reported by the physics checks)
         return np.clip(Z[:, self.columns_], -1e6, 1e6)
 
+    def _md(self, Z):
+        """Squared robust Mahalanobis distance with the ridge-regularised MCD covariance."""
+        D = Z - self.mcd_.location_
+        return np.einsum("ij,jk,ik->i", D, self.precision_, D)
+
     def _combined(self, Z):
-        u_md = np.searchsorted(self.ref_md_, self.mcd_.mahalanobis(Z), side="right") / len(self.ref_md_)
+        md = self._md(Z)
+        u_md = np.searchsorted(self.ref_md_, md, side="right") / len(self.ref_md_)
         u_if = np.searchsorted(self.ref_if_, _forest_score(self.forest_, Z), side="right") / len(self.ref_if_)
         # tie-break above the reference range by the raw distance so far-off points rank highest
-        md = self.mcd_.mahalanobis(Z)
         extra = np.where(u_md >= 1.0, np.log1p(md / max(self.ref_md_[-1], 1e-12)), 0.0)
         return np.maximum(u_md, u_if) + extra
 

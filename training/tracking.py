@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import os
+import re
 import threading
 from pathlib import Path
 from typing import Any, Mapping
@@ -60,7 +61,7 @@ def flatten_metrics(d: Mapping, prefix: str = "") -> dict[str, float]:
     """Finite numeric leaves of a nested dict as ``a.b.c`` keys (MLflow metric names)."""
     out: dict[str, float] = {}
     for k, v in d.items():
-        key = f"{prefix}{k}".replace(" ", "_").replace("@", "_")
+        key = re.sub(r"[^A-Za-z0-9_\-./]", "_", f"{prefix}{k}")  # MLflow's allowed metric-name characters
         if isinstance(v, Mapping):
             out.update(flatten_metrics(v, key + "."))
         elif isinstance(v, bool):
