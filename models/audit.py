@@ -27,6 +27,7 @@ writes the HTML report and, with ``recalibrate=True``, a recalibrated challenger
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping, Sequence
@@ -713,23 +714,34 @@ def _recalibrate(bundle, hist, result: AuditResult, *, tracking_uri=None) -> dic
         "mean_loss_pct": m["mean_loss_pct"].to_numpy(float),
         "max_loss_mm": m["max_loss_pct"].to_numpy(float) / 100.0 * nominal_mm,
     })
+    # targets without enough readings (e.g. mean loss needs surveys along the whole path) are left as they are
+    y = y[[c for c in y.columns if np.isfinite(y[c].to_numpy(float)).sum() >= result.settings.min_n]]
     new = bundle.recalibrate(X, y)
-    old_path = Path(result.model.get("bundle_path") or ".")
-    base = old_path.parent if old_path.name else Path(".")
-    target = base / f"{old_path.name or 'model'}-recal-{new.version}"
-    if target.exists():
-        raise ValueError(f"refusing to overwrite {target}: a model with version {new.version} is already there.")
-    new.save(target)
-    info = {"bundle_path": target, "model_version": new.version}
-    try:
-        from models.registry import register_bundle
+    old_path = Path(result.model.get("bundle_path") or bundle.path or "model")
+    if re.match(r"^v\d{3,}$", old_path.name):
+        # inside a model store: the next free vNNN (the version follows the folder)
+        target = new.save_version(old_path.parent)
+    else:
+        target = old_path.parent / f"{old_path.name}-recal-{new.version}"
+        if target.exists():
+            raise ValueError(f"refusing to overwrite {target}: a model with version {new.version} is already there.")
+        target = new.save(target)
+    info: dict[str, Any] = {"bundle_path": target, "model_version": new.version,
+                            "parent_version": result.model["model_version"]}
+    from models.registry import register_bundle
+    from training.tracking import TrackedRun, experiment_name
 
-        reg = register_bundle(target, result.model["family_name"], alias="challenger", tracking_uri=tracking_uri)
-        info["registered"] = reg
-    except TypeError:
-        from models.registry import register_bundle
-
-        info["registered"] = register_bundle(target, result.model["family_name"], alias="challenger")
+    family_name = result.model["family_name"]
+    with TrackedRun(experiment_name(family_name), run_name=f"recalibrate {info['parent_version']} -> {new.version}",
+                    tracking_uri=tracking_uri, tags={"waneguide.kind": "recalibration",
+                                                     "waneguide.parent_version": info["parent_version"]}) as run:
+        run.log_params({"parent_version": info["parent_version"], "n_readings": len(m),
+                        "window_days": result.settings.window_days, "verdict_before": result.verdict})
+        run.log_metrics({f"audit_{t}_{k}": v for t, sm in result.summaries.items()
+                         for k, v in sm.items() if k in ("bias", "rmse", "coverage") and np.isfinite(v)})
+        info["registered_version"] = register_bundle(target, family_name, alias="challenger",
+                                                     tracking_uri=tracking_uri, run_id=run.run_id)
+        info["run_id"] = run.run_id
     return info
 
 
@@ -759,7 +771,10 @@ def format_audit(result: AuditResult) -> str:
                      f"{result.settings.drift_alpha:g})")
     lines += [f"note: {n}" for n in result.notes]
     if result.challenger:
-        lines.append(f"challenger: version {result.challenger['model_version']} at {result.challenger['bundle_path']}")
+        reg = result.challenger.get("registered_version")
+        lines.append(f"challenger: version {result.challenger['model_version']} at {result.challenger['bundle_path']}"
+                     + (f", registered in MLflow as version {reg} with alias 'challenger'" if reg else "")
+                     + "; the model in service is unchanged")
     if result.report_path:
         lines.append(f"report: {result.report_path}")
     lines.append(CAUTION)
