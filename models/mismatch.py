@@ -141,7 +141,8 @@ class MismatchDetector(BaseEstimator):
         self.support_fraction = support_fraction
         self.random_state = random_state
 
-    def fit(self, X, y=None):
+    def fit(self, X, y=None, groups=None):
+        """Fit on in-family rows; ``groups`` (e.g. specimen) keeps calibration groups apart from fitting ones."""
         from sklearn.covariance import MinCovDet
         from sklearn.ensemble import IsolationForest
 
@@ -161,9 +162,15 @@ class MismatchDetector(BaseEstimator):
         self.scale_ = np.where(scale > 0, scale, 1.0)
         Z = self._standardise(X)
         n = len(Z)
-        perm = rng.permutation(n)
-        n_cal = max(5, int(round(self.calibration_fraction * n)))
-        cal, fit = perm[:n_cal], perm[n_cal:]
+        if groups is not None:
+            from .conformal import grouped_split
+
+            is_cal = grouped_split(np.asarray(groups), self.calibration_fraction, rng)
+            cal, fit = np.flatnonzero(is_cal), rng.permutation(np.flatnonzero(~is_cal))
+        else:
+            perm = rng.permutation(n)
+            n_cal = max(5, int(round(self.calibration_fraction * n)))
+            cal, fit = perm[:n_cal], perm[n_cal:]
         if len(fit) > self.max_fit_points:
             fit = fit[: int(self.max_fit_points)]
         seed = lambda: int(rng.integers(2**31 - 1))  # noqa: E731

@@ -210,7 +210,7 @@ def fit_bundle(family, features: pd.DataFrame, targets: pd.DataFrame, groups, *,
         diag["timings_s"][name] = time.perf_counter() - t0
     t0 = time.perf_counter()
     detector = MismatchDetector(false_alarm_rate=cfg.false_alarm_rate, n_estimators=cfg.mismatch_estimators,
-                                random_state=seed()).fit(Xtr)
+                                random_state=seed()).fit(Xtr, groups=gtr)
     checker = PhysicsChecker(family).fit(features.reset_index(drop=True)[tr])
     diag["timings_s"]["mismatch"] = time.perf_counter() - t0
     domain = TrainingDomain.from_features(Xtr, rng=seed())
