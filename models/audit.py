@@ -13,8 +13,9 @@ The arithmetic lives in small functions over DataFrames (testable by hand):
    nearest in time, within ``window_days`` (wall loss grows over months, so a week
    apart is taken as the same state: common practice, no source).
 3. :func:`residual_summary` per target: residual ``r = estimate - reading``, bias with
-   its Student-t confidence interval, RMSE, empirical coverage of the band with its
-   Clopper-Pearson interval against the nominal coverage.
+   its Student-t confidence interval, RMSE, empirical coverage of the band (widened in
+   quadrature by the reading's own uncertainty, when stated) with its Clopper-Pearson
+   interval against the nominal coverage.
 4. :func:`standardised_residuals` and :class:`models.drift.PageHinkley` on them, in date
    order (sequential drift of the residuals).
 5. :func:`models.drift.feature_drift` of recent captures' features against the training
@@ -60,7 +61,8 @@ VERDICTS = ("in control", "recalibrate", "retrain")
 VERDICT_RULES = (
     "retrain when the inputs have left the training domain: at least one feature drifted "
     "(Benjamini-Hochberg adjusted KS p-value below alpha) with a major shift (PSI >= 0.25) and more "
-    "than {support_share:.0%} of its recent values outside the central 99% of the training sample; "
+    "than {support_share:.0%} of its recent values outside the range seen in training (features constant "
+    "in training are not tested); "
     "or more than {oof_share:.0%} of the matched captures were flagged out of family.",
     "recalibrate (when not retrain) for any target with at least {min_n} matched readings: the bias "
     "confidence interval excludes zero; or the empirical band coverage is significantly below nominal "
@@ -341,19 +343,37 @@ def _side_halfwidth(est, lo, hi, truth):
     return np.where(truth >= est, hi - est, est - lo)
 
 
-def residual_summary(est, lower, upper, truth, *, coverage_nominal: float, confidence: float = 0.95) -> dict:
+def _reach(est, lower, upper, truth, u, level: float, coverage_nominal: float) -> np.ndarray:
+    """How far from the estimate a reading may fall and still count as inside the band at ``level``.
+
+    The side half-width ``h`` (scaled by ``z_{(1+a)/2} / z_{(1+c)/2}`` for another level ``a``)
+    combined in quadrature with the reading's own spread ``z_{(1+a)/2} u``: the band a reading
+    with standard uncertainty ``u`` should fall in (Gaussian approximation; with ``u = 0`` it
+    is the band itself).
+    """
+    za, zc = _z(level), _z(coverage_nominal)
+    h = _side_halfwidth(est, lower, upper, truth) * (za / zc)
+    u = np.where(np.isfinite(u), u, 0.0)
+    return np.sqrt(h ** 2 + (za * u) ** 2)
+
+
+def residual_summary(est, lower, upper, truth, u_truth=None, *, coverage_nominal: float,
+                     confidence: float = 0.95) -> dict:
     """Residual statistics of one target over matched pairs (NaN pairs dropped).
 
     ``r = est - truth``; bias ``mean(r)`` with the Student-t interval
     ``mean +- t_{(1+confidence)/2, n-1} s / sqrt(n)``; RMSE ``sqrt(mean r^2)``; MAE;
-    empirical coverage ``k/n`` with ``k`` the truths inside ``[lower, upper]`` and its
-    Clopper-Pearson interval (Clopper and Pearson 1934) at ``confidence``.
+    empirical coverage ``k/n`` with ``k`` the readings inside the band and its
+    Clopper-Pearson interval (Clopper and Pearson 1934) at ``confidence``. With reading
+    uncertainties ``u_truth`` the band a reading is held to is widened in quadrature by
+    ``z u`` (see :func:`_reach`); without them it is ``[lower, upper]``.
     """
     from scipy import stats
 
     est, lower, upper, truth = (np.asarray(a, dtype=float) for a in (est, lower, upper, truth))
+    u = np.full(est.shape, np.nan) if u_truth is None else np.asarray(u_truth, dtype=float)
     ok = np.isfinite(est) & np.isfinite(truth) & np.isfinite(lower) & np.isfinite(upper)
-    est, lower, upper, truth = est[ok], lower[ok], upper[ok], truth[ok]
+    est, lower, upper, truth, u = est[ok], lower[ok], upper[ok], truth[ok], u[ok]
     n = int(est.size)
     out = {"n": n, "bias": np.nan, "bias_lower": np.nan, "bias_upper": np.nan, "sd": np.nan,
            "rmse": np.nan, "mae": np.nan, "covered": 0, "coverage": np.nan,
@@ -370,7 +390,8 @@ def residual_summary(est, lower, upper, truth, *, coverage_nominal: float, confi
         sd = float(r.std(ddof=1))
         half = float(stats.t.ppf(0.5 + confidence / 2.0, n - 1)) * sd / math.sqrt(n)
         out.update(sd=sd, bias_lower=out["bias"] - half, bias_upper=out["bias"] + half)
-    k = int(np.sum((truth >= lower) & (truth <= upper)))
+    reach = _reach(est, lower, upper, truth, u, coverage_nominal, coverage_nominal)
+    k = int(np.sum(np.abs(r) <= reach + 1e-12))
     ci = stats.binomtest(k, n).proportion_ci(confidence_level=confidence, method="exact")
     out.update(covered=k, coverage=k / n, coverage_lower=float(ci.low), coverage_upper=float(ci.high))
     return out
@@ -390,13 +411,14 @@ def standardised_residuals(est, lower, upper, truth, u_truth, *, coverage_nomina
     return (est - truth) / scale
 
 
-def calibration_curve(est, lower, upper, truth, *, coverage_nominal: float,
+def calibration_curve(est, lower, upper, truth, u_truth=None, *, coverage_nominal: float,
                       levels: Sequence[float] = (0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99)):
     """Empirical coverage at several nominal levels from one band.
 
     The band at level ``a`` is the nominal band with each side scaled by
-    ``z_{(1+a)/2} / z_{(1+c)/2}`` (a Gaussian-shape approximation); at ``a = c`` it is the
-    band itself, so that point is exact.
+    ``z_{(1+a)/2} / z_{(1+c)/2}`` (a Gaussian-shape approximation), widened by the reading
+    uncertainty as in :func:`residual_summary`; at ``a = c`` with ``u = 0`` it is the band
+    itself, so that point is exact.
 
     Returns
     -------
@@ -405,18 +427,17 @@ def calibration_curve(est, lower, upper, truth, *, coverage_nominal: float,
     import pandas as pd
 
     est, lower, upper, truth = (np.asarray(a, dtype=float) for a in (est, lower, upper, truth))
+    u = np.full(est.shape, np.nan) if u_truth is None else np.asarray(u_truth, dtype=float)
     ok = np.isfinite(est) & np.isfinite(truth) & np.isfinite(lower) & np.isfinite(upper)
-    est, lower, upper, truth = est[ok], lower[ok], upper[ok], truth[ok]
-    half = _side_halfwidth(est, lower, upper, truth)
+    est, lower, upper, truth, u = est[ok], lower[ok], upper[ok], truth[ok], u[ok]
     lv = sorted(set(float(a) for a in levels) | {float(coverage_nominal)})
     rows = []
-    zc = _z(coverage_nominal)
     for a in lv:
         if est.size == 0:
             rows.append({"level": a, "empirical": np.nan, "n": 0})
             continue
-        scaled = half * (_z(a) / zc)
-        rows.append({"level": a, "empirical": float(np.mean(np.abs(est - truth) <= scaled + 1e-12)),
+        reach = _reach(est, lower, upper, truth, u, a, coverage_nominal)
+        rows.append({"level": a, "empirical": float(np.mean(np.abs(est - truth) <= reach + 1e-12)),
                      "n": int(est.size)})
     return pd.DataFrame(rows)
 
@@ -465,24 +486,36 @@ def decide(summaries: Mapping[str, dict], drift: Mapping[str, dict], feature_tab
 
 
 # --------------------------------------------------------------------------------------
-def _outside_share(reference, recent, columns) -> dict:
+def _outside_share(reference, recent, columns, ranges: Mapping[str, tuple] | None = None) -> dict:
+    """Share of recent values outside the training range of each feature.
+
+    ``ranges`` (feature -> (min, max) over the whole training set, from the bundle's
+    training domain) wins; otherwise the reference sample's own min and max are used.
+    """
     out = {}
     for c in columns:
-        ref = np.asarray(reference[c], dtype=float)
-        ref = ref[np.isfinite(ref)]
         new = np.asarray(recent[c], dtype=float)
         new = new[np.isfinite(new)]
-        if ref.size < 5 or new.size == 0:
+        if ranges is not None and c in ranges:
+            lo, hi = ranges[c]
+        else:
+            ref = np.asarray(reference[c], dtype=float)
+            ref = ref[np.isfinite(ref)]
+            if ref.size < 5:
+                out[c] = np.nan
+                continue
+            lo, hi = float(ref.min()), float(ref.max())
+        if new.size == 0 or not (np.isfinite(lo) and np.isfinite(hi)):
             out[c] = np.nan
             continue
-        lo, hi = np.quantile(ref, [0.005, 0.995])
         out[c] = float(np.mean((new < lo) | (new > hi)))
     return out
 
 
 def audit_frames(scores, readings, *, nominal_thickness_mm: float, path_length_mm: float,
                  coverage_nominal: float, reference_features=None, recent_features=None,
-                 settings: AuditSettings | None = None, model: Mapping[str, Any] | None = None) -> AuditResult:
+                 settings: AuditSettings | None = None, model: Mapping[str, Any] | None = None,
+                 training_ranges: Mapping[str, tuple] | None = None) -> AuditResult:
     """The whole audit arithmetic on plain tables (no bundle, no database).
 
     Parameters
@@ -498,6 +531,9 @@ def audit_frames(scores, readings, *, nominal_thickness_mm: float, path_length_m
         Nominal coverage of the model's bands.
     reference_features, recent_features : DataFrame, optional
         Training-domain sample and recent captures' features, for feature drift.
+    training_ranges : mapping, optional
+        Feature -> (min, max) over the whole training set (the support rule of
+        :data:`VERDICT_RULES`); default: the reference sample's own range.
     """
     import pandas as pd
 
@@ -531,9 +567,10 @@ def audit_frames(scores, readings, *, nominal_thickness_mm: float, path_length_m
         lo = used[f"est_{t}_lower"].to_numpy(float)
         hi = used[f"est_{t}_upper"].to_numpy(float)
         truth = used[t].to_numpy(float)
-        summaries[t] = residual_summary(est, lo, hi, truth, coverage_nominal=coverage_nominal,
+        u_t = used[f"u_{t}"].to_numpy(float)
+        summaries[t] = residual_summary(est, lo, hi, truth, u_t, coverage_nominal=coverage_nominal,
                                         confidence=s.confidence)
-        c = calibration_curve(est, lo, hi, truth, coverage_nominal=coverage_nominal)
+        c = calibration_curve(est, lo, hi, truth, u_t, coverage_nominal=coverage_nominal)
         c.insert(0, "target", t)
         calib.append(c)
         ok = np.isfinite(est) & np.isfinite(truth) & np.isfinite(lo) & np.isfinite(hi)
@@ -550,8 +587,15 @@ def audit_frames(scores, readings, *, nominal_thickness_mm: float, path_length_m
     ft = None
     if reference_features is not None and recent_features is not None and len(recent_features):
         cols = [c for c in reference_features.columns if c in recent_features.columns]
-        ft = feature_drift(reference_features[cols], recent_features[cols], cols, alpha=s.drift_alpha)
-        share = _outside_share(reference_features, recent_features, cols)
+        # a feature constant over the training sample carries nothing the model could have learned
+        # from, so a change in it is no drift of the model's inputs: reported, not tested
+        ref_num = reference_features[cols].apply(pd.to_numeric, errors="coerce")
+        constant = [c for c in cols if not (ref_num[c].nunique(dropna=True) > 1)]
+        tested = [c for c in cols if c not in constant]
+        if constant:
+            notes.append(f"feature(s) constant in the training sample, not tested for drift: {', '.join(constant)}")
+        ft = feature_drift(reference_features[tested], recent_features[tested], tested, alpha=s.drift_alpha)
+        share = _outside_share(reference_features, recent_features, tested, training_ranges)
         ft["outside_share"] = ft["feature"].map(share).astype(float)
     elif reference_features is None:
         notes.append("the model carries no training-domain sample; feature drift not checked")
@@ -670,9 +714,12 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
                                          content_hashes=recent["content_hash"])
             cols = [c for c in getattr(bundle, "feature_columns", ref.columns) if c in ref.columns]
             ref = ref[cols]
+        dom = getattr(bundle, "training_domain", None)
+        ranges = getattr(dom, "ranges", None) if dom is not None else None
         result = audit_frames(scores, readings, nominal_thickness_mm=ident["nominal_thickness_mm"],
                               path_length_mm=ident["path_length_mm"], coverage_nominal=ident["coverage_nominal"],
-                              reference_features=ref, recent_features=recent_feats, settings=s, model=ident)
+                              reference_features=ref, recent_features=recent_feats, settings=s, model=ident,
+                              training_ranges=ranges)
         if recalibrate:
             result.challenger = _recalibrate(bundle, hist, result, tracking_uri=tracking_uri)
         result.audit_id = hist.add_audit(model_version=ident["model_version"], verdict=result.verdict,

@@ -191,8 +191,9 @@ def _drift_figure(drift, settings):
         ax.plot(x, r.statistic_down, "-o", ms=3, color="#1f77b4", label="decrease statistic")
         ax.axhline(settings.ph_lambda, color="black", ls="--", lw=1, label=f"threshold lambda = {settings.ph_lambda:g}")
         ax2 = ax.twinx()
-        ax2.bar(x, d["z"], width=3, color="grey", alpha=0.35)
-        ax2.set_ylabel("standardised residual [-]", fontsize=8)
+        ax2.plot(x, d["z"], "D", ms=4, color="grey", alpha=0.7, label="standardised residual")
+        ax2.axhline(0.0, color="grey", lw=0.6)
+        ax2.set_ylabel("standardised residual [-] (grey diamonds)", fontsize=8)
         if r.alarm:
             ax.axvline(x[r.alarm_index], color="#b35900", lw=2, label="alarm")
         ax.set_ylabel("Page-Hinkley statistic [sigma]")

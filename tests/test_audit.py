@@ -228,3 +228,16 @@ def test_reading_in_another_unit_is_refused(readings):
     r.loc[0, "remaining_thickness_mm"] = 1800.0     # micrometres by mistake
     with pytest.raises(ValueError, match="line 2: remaining_thickness_mm 1800"):
         reading_targets(r, nominal_thickness_mm=2.0, path_length_mm=300.0)
+
+
+def test_reading_uncertainty_widens_the_band_in_quadrature():
+    # estimate 10, band [9, 11] at 90 %; reading 11.5: outside the plain band.
+    # With u = 0.5: reach = sqrt(1^2 + (1.6449 * 0.5)^2) = 1.2948 >= 1.5? no -> still outside;
+    # with u = 1.0: reach = sqrt(1 + 1.6449^2) = 1.9251 >= 1.5 -> inside.
+    plain = residual_summary([10.0], [9.0], [11.0], [11.5], coverage_nominal=0.9)
+    small = residual_summary([10.0], [9.0], [11.0], [11.5], [0.5], coverage_nominal=0.9)
+    large = residual_summary([10.0], [9.0], [11.0], [11.5], [1.0], coverage_nominal=0.9)
+    assert (plain["covered"], small["covered"], large["covered"]) == (0, 0, 1)
+    c = calibration_curve([10.0], [9.0], [11.0], [11.5], [1.0], coverage_nominal=0.9).set_index("level")
+    # at 50 %: z = 0.6745 -> reach = sqrt((0.6745/1.6449)^2 + 0.6745^2) = 0.7894 < 1.5 -> outside
+    assert c.loc[0.5, "empirical"] == 0.0 and c.loc[0.9, "empirical"] == 1.0

@@ -44,7 +44,7 @@ def make_bundle(family, work: Path, *, n_cases: int = 400) -> Path:
     camp = work / "campaign"
     run_campaign(family, n_cases, camp, seed=1, workers=1, progress=False)
     res = train_model(family, camp, work / "models", random_state=0, progress=False, track=False,
-                      shift_study=False, config=TrainConfig(n_estimators=150, gp_points=200))
+                      shift_study=False, config=TrainConfig(n_estimators=150, gp_points=200, n_jobs=1))
     return Path(res.bundle_path)
 
 
