@@ -20,12 +20,13 @@ and a capture is flagged when p <= false_alarm_rate. For in-family
 construction.
 
 Physics part (:class:`PhysicsChecker`): readable reasons when the baseline S0
-arrival does not fit the family's path length / flange thickness / material,
-when the received frequency content is off the excitation, or when the sample
-rate differs. The expected S0 arrival is spacing / c_g,S0(f_c, d_nominal)
-(Rayleigh-Lamb, features.dispersion); an offset common to the in-family data
-(how the feature extractor times an arrival, e.g. the burst centre) is learned
-from the training campaign together with its spread.
+arrival does not fit the family's path length / alloy, when the baseline A0
+arrival does not fit its flange thickness, when the received frequency content
+is off the excitation, or when the sample rate differs. Expected arrivals are
+Rayleigh-Lamb group delays spacing / c_g(f_c, d_nominal) at the baseline's
+temperature (features.temperature.ThermalModel); an offset common to the
+in-family data (how the feature extractor times an arrival, e.g. the burst
+centre) is learned from the training campaign together with its spread.
 
 A flagged capture still gets its numbers; the bundle marks them out of domain.
 """
@@ -251,50 +252,115 @@ class MismatchDetector(BaseEstimator):
 class PhysicsChecker:
     """Family-bound physics plausibility checks with readable reasons.
 
+    Baseline arrivals (the baseline is the pristine record of the path, so its arrival
+    times measure the path, not the damage):
+
+    * S0, nearly dispersion-free at low frequency-thickness, times the path length and
+      the alloy (plate velocity);
+    * A0, strongly dispersive (c_g ~ sqrt(f d) at low fd; Graff 1975 sec. 4.2), times the
+      flange thickness.
+
+    Each expected arrival is the Rayleigh-Lamb group delay at the baseline's own
+    temperature (features.temperature.ThermalModel: expansion and dE/dT), plus the
+    extractor's timing offset and the spread learned from the in-family campaign.
+
     Parameters
     ----------
     family : features.family.Family
-    arrival_rel_tol : float, default 0.03
-        Least tolerance on the baseline S0 arrival, as a fraction of the expected time.
+    arrival_rel_tol : float, default 0.0075
+        Least tolerance on the baseline S0 arrival, as a fraction of the expected time
+        (the 2024-T3 / 7075-T6 plate velocities differ by 1.5 %).
+    a0_arrival_rel_tol : float, default 0.02
+        Least tolerance on the baseline A0 arrival (a 15 % thicker demo-fb2 flange moves it by ~3.5 %).
     frequency_rel_tol : float, default 0.25
         Least tolerance on the peak frequency, as a fraction of the centre frequency.
     sample_rate_rel_tol : float, default 1e-3
     spread_factor : float, default 6
         Tolerances widen to ``spread_factor`` robust standard deviations of the in-family values.
+    tail_quantile : float, default 0.999
+        Arrival tolerances also widen to 1.25 x this quantile of the in-family absolute
+        deviations, so that the physics checks alone flag at most about 0.1 % of in-family
+        baselines (echo overlap spreads the A0 envelope arrival with heavy tails).
     """
 
-    def __init__(self, family, *, arrival_rel_tol=0.03, frequency_rel_tol=0.25, sample_rate_rel_tol=1e-3,
-                 spread_factor=6.0):
+    _ARRIVALS = (
+        # mode, feature column(s) tried in order, tolerance attribute, what to check
+        ("S0", ("baseline_s0_arrival_s", "s0_baseline_arrival_envelope_s"), "arrival_rel_tol",
+         "check the transducer spacing and the alloy"),
+        ("A0", ("a0_baseline_arrival_envelope_s",), "a0_arrival_rel_tol",
+         "check the flange thickness"),
+    )
+
+    def __init__(self, family, *, arrival_rel_tol=0.0075, a0_arrival_rel_tol=0.02, frequency_rel_tol=0.25,
+                 sample_rate_rel_tol=1e-3, spread_factor=6.0, tail_quantile=0.999):
         self.family = family
+        self.tail_quantile = tail_quantile
         self.arrival_rel_tol = arrival_rel_tol
+        self.a0_arrival_rel_tol = a0_arrival_rel_tol
         self.frequency_rel_tol = frequency_rel_tol
         self.sample_rate_rel_tol = sample_rate_rel_tol
         self.spread_factor = spread_factor
         self.state: dict = {}
 
-    def expected_s0_arrival_s(self) -> float:
-        """spacing / c_g of S0 at the centre frequency and nominal thickness (Rayleigh-Lamb)."""
-        from features.dispersion import fundamental_dispersion
+    def _thermal(self):
+        if getattr(self, "_thermal_model", None) is None:
+            from features.temperature import ThermalModel
 
-        fam = self.family
-        curves = fundamental_dispersion(fam.build_material(), fam.nominal_thickness_m,
-                                        fam.excitation.centre_frequency_hz)
-        cg = float(curves.group_velocity_m_s[0, curves.mode_index("S0"), 0])
-        return fam.path.spacing_m / cg
+            self._thermal_model = ThermalModel(self.family)
+        return self._thermal_model
+
+    def expected_s0_arrival_s(self) -> float:
+        """spacing / c_g of S0 at the centre frequency, nominal thickness, reference temperature."""
+        return self.expected_arrival_s("S0")
+
+    def expected_arrival_s(self, mode: str, temperature_c=None):
+        """Rayleigh-Lamb group delay of ``mode`` over the path at ``temperature_c`` [s]."""
+        t = self.family.build_material().reference_temperature_c if temperature_c is None else temperature_c
+        out = self._thermal().arrival_time_s(mode, t)
+        return float(out) if np.ndim(out) == 0 else out
+
+    def _base_state(self) -> dict:
+        return {"expected_s0_arrival_s": self.expected_s0_arrival_s(),
+                "expected_a0_arrival_s": self.expected_arrival_s("A0"),
+                "centre_frequency_hz": self.family.excitation.centre_frequency_hz,
+                "sample_rate_hz": self.family.acquisition.sample_rate_hz}
+
+    @staticmethod
+    def _column(feature_df, names, n):
+        for c in names:
+            if c in feature_df:
+                return pd.to_numeric(feature_df[c], errors="coerce").to_numpy(dtype=float)
+        return np.full(n, np.nan)
+
+    def _baseline_temperature(self, feature_df, n):
+        t = self._column(feature_df, ("baseline_temperature_c",), n)
+        ref = self.family.build_material().reference_temperature_c
+        return np.where(np.isfinite(t), t, ref)
+
+    def _arrival_residual(self, mode, names, feature_df):
+        """Measured baseline arrival minus its temperature-compensated Rayleigh-Lamb value."""
+        n = len(feature_df)
+        measured = self._column(feature_df, names, n)
+        expected = np.asarray(self.expected_arrival_s(mode, self._baseline_temperature(feature_df, n)), dtype=float)
+        return measured - expected, measured, expected
 
     def fit(self, feature_df: pd.DataFrame) -> "PhysicsChecker":
-        """Learn the extractor's arrival offset and the in-family spreads."""
-        st = {"expected_s0_arrival_s": self.expected_s0_arrival_s(),
-              "centre_frequency_hz": self.family.excitation.centre_frequency_hz,
-              "sample_rate_hz": self.family.acquisition.sample_rate_hz}
-        for col, key in (("baseline_s0_arrival_s", "arrival"), ("capture_peak_frequency_hz", "frequency")):
-            if col in feature_df:
-                v = pd.to_numeric(feature_df[col], errors="coerce").to_numpy(dtype=float)
-                v = v[np.isfinite(v)]
-                if v.size:
-                    med = float(np.median(v))
-                    st[f"{key}_median"] = med
-                    st[f"{key}_spread"] = float(1.4826 * np.median(np.abs(v - med)))
+        """Learn the extractor's arrival offsets and the in-family spreads."""
+        st = self._base_state()
+        for mode, names, _, _ in self._ARRIVALS:
+            r, _, _ = self._arrival_residual(mode, names, feature_df)
+            r = r[np.isfinite(r)]
+            if r.size:
+                med = float(np.median(r))
+                st[f"{mode.lower()}_offset_s"] = med
+                st[f"{mode.lower()}_spread_s"] = float(1.4826 * np.median(np.abs(r - med)))
+                st[f"{mode.lower()}_tail_s"] = float(1.25 * np.quantile(np.abs(r - med), self.tail_quantile))
+        f = self._column(feature_df, ("capture_peak_frequency_hz",), len(feature_df))
+        f = f[np.isfinite(f)]
+        if f.size:
+            med = float(np.median(f))
+            st["frequency_median"] = med
+            st["frequency_spread"] = float(1.4826 * np.median(np.abs(f - med)))
         self.state = st
         return self
 
@@ -305,34 +371,36 @@ class PhysicsChecker:
         return obj
 
     def params(self) -> dict:
-        return {"arrival_rel_tol": self.arrival_rel_tol, "frequency_rel_tol": self.frequency_rel_tol,
-                "sample_rate_rel_tol": self.sample_rate_rel_tol, "spread_factor": self.spread_factor}
+        return {"arrival_rel_tol": self.arrival_rel_tol, "a0_arrival_rel_tol": self.a0_arrival_rel_tol,
+                "frequency_rel_tol": self.frequency_rel_tol, "sample_rate_rel_tol": self.sample_rate_rel_tol,
+                "spread_factor": self.spread_factor, "tail_quantile": self.tail_quantile}
 
     def reasons(self, feature_df: pd.DataFrame) -> list[list[str]]:
         """One list of readable reasons per row (empty list: passes)."""
         if not self.state:
-            self.state = {"expected_s0_arrival_s": self.expected_s0_arrival_s(),
-                          "centre_frequency_hz": self.family.excitation.centre_frequency_hz,
-                          "sample_rate_hz": self.family.acquisition.sample_rate_hz}
+            self.state = self._base_state()
         st, fam = self.state, self.family
         n = len(feature_df)
         out: list[list[str]] = [[] for _ in range(n)]
-        col = lambda c: (pd.to_numeric(feature_df[c], errors="coerce").to_numpy(dtype=float)  # noqa: E731
-                         if c in feature_df else np.full(n, np.nan))
-        # 1. baseline S0 arrival vs path length / thickness / material
-        t = col("baseline_s0_arrival_s")
-        t_phys = st["expected_s0_arrival_s"]
-        centre = st.get("arrival_median", t_phys)
-        tol = max(self.arrival_rel_tol * t_phys, self.spread_factor * st.get("arrival_spread", 0.0))
         mat = fam.build_material().name
-        for i in np.flatnonzero(np.isfinite(t) & (np.abs(t - centre) > tol)):
-            out[i].append(
-                f"baseline S0 arrival {t[i] * 1e6:.2f} us does not fit the family ({centre * 1e6:.2f} us "
-                f"+- {tol * 1e6:.2f} us expected for the {fam.path.transducer_spacing_mm:g} mm path in "
-                f"{fam.section.flange_thickness_mm:g} mm {mat}; Rayleigh-Lamb S0 time of flight "
-                f"{t_phys * 1e6:.2f} us): check the transducer spacing, the flange thickness and the alloy")
+        # 1. baseline S0 / A0 arrivals vs path length, alloy and flange thickness
+        for mode, names, tol_attr, advice in self._ARRIVALS:
+            key = mode.lower()
+            r, measured, expected = self._arrival_residual(mode, names, feature_df)
+            offset = st.get(f"{key}_offset_s", 0.0)
+            dev = r - offset
+            t_ref = st.get(f"expected_{key}_arrival_s", float(np.nanmedian(expected)) if n else 0.0)
+            tol = max(getattr(self, tol_attr) * t_ref, self.spread_factor * st.get(f"{key}_spread_s", 0.0),
+                      st.get(f"{key}_tail_s", 0.0))
+            for i in np.flatnonzero(np.isfinite(dev) & (np.abs(dev) > tol)):
+                centre = expected[i] + offset
+                out[i].append(
+                    f"baseline {mode} arrival {measured[i] * 1e6:.2f} us does not fit the family "
+                    f"({centre * 1e6:.2f} +- {tol * 1e6:.2f} us expected at the baseline temperature for the "
+                    f"{fam.path.transducer_spacing_mm:g} mm path in {fam.section.flange_thickness_mm:g} mm {mat}; "
+                    f"Rayleigh-Lamb {mode} group delay {expected[i] * 1e6:.2f} us): {advice}")
         # 2. frequency content vs the excitation
-        f = col("capture_peak_frequency_hz")
+        f = self._column(feature_df, ("capture_peak_frequency_hz",), n)
         fc = st["centre_frequency_hz"]
         fcen = st.get("frequency_median", fc)
         ftol = max(self.frequency_rel_tol * fc, self.spread_factor * st.get("frequency_spread", 0.0))
@@ -341,7 +409,7 @@ class PhysicsChecker:
                           f"(accepted {(fcen - ftol) / 1e3:.1f}-{(fcen + ftol) / 1e3:.1f} kHz): check the "
                           f"pulser settings and the transducers")
         # 3. sample rate
-        fs = col("sample_rate_hz")
+        fs = self._column(feature_df, ("sample_rate_hz",), n)
         fs_fam = st["sample_rate_hz"]
         for i in np.flatnonzero(np.isfinite(fs) & (np.abs(fs - fs_fam) > self.sample_rate_rel_tol * fs_fam)):
             out[i].append(f"sample rate {fs[i] / 1e6:g} MHz differs from the family's {fs_fam / 1e6:g} MHz: "

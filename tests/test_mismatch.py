@@ -92,3 +92,43 @@ def test_combined_verdict_keeps_rows_and_explains(detector, family_fb2):
     assert not out.loc[0, "in_family"] and "furthest: x0" in out.loc[0, "mismatch_reasons"]
     assert "feature(s) x2 could not be computed" in out.loc[1, "mismatch_reasons"]
     assert out["mismatch_p_value"].between(0, 1).all()
+
+
+def test_physics_a0_arrival_flags_thickness_and_compensates_temperature(family_fb2):
+    # Baseline A0 group delay over the path is a thickness gauge. Kirchhoff flexure (c_g ~ sqrt(f d),
+    # Graff 1975 sec. 4.2) would put a 15 % thicker flange 7 % earlier; at fd = 0.3 MHz mm the exact
+    # A0 is already bending over towards its group-velocity maximum, and the Rayleigh-Lamb delay
+    # moves by about 3.5 % -- below the Kirchhoff bound, above the checker's 2 % floor. Expected values come from the Rayleigh-Lamb engine at each baseline's own
+    # temperature (expansion and dE/dT of the material model), so a hot in-family baseline passes.
+    from features.temperature import ThermalModel
+
+    thick = family_fb2.model_copy(update={"section": family_fb2.section.model_copy(
+        update={"flange_thickness_mm": family_fb2.section.flange_thickness_mm * 1.15})})
+    nominal, thicker = ThermalModel(family_fb2), ThermalModel(thick)
+    rng = np.random.default_rng(6)
+    n = 300
+    temps = rng.uniform(-10, 50, n)
+    ref = pd.DataFrame({
+        "baseline_temperature_c": temps,
+        "baseline_s0_arrival_s": nominal.arrival_time_s("S0", temps) + 1e-6 + 1e-8 * rng.normal(size=n),
+        "a0_baseline_arrival_envelope_s": nominal.arrival_time_s("A0", temps) + 2e-6 + 5e-8 * rng.normal(size=n),
+        "capture_peak_frequency_hz": 150e3 * (1 + 0.02 * rng.normal(size=n)),
+        "sample_rate_hz": np.full(n, 10e6)})
+    chk = PhysicsChecker(family_fb2).fit(ref)
+    assert chk.state["a0_offset_s"] == pytest.approx(2e-6, abs=2e-8)
+    probe = pd.DataFrame({
+        "baseline_temperature_c": [45.0, 20.0, 20.0],
+        "baseline_s0_arrival_s": [float(nominal.arrival_time_s("S0", 45.0)) + 1e-6,
+                                  float(nominal.arrival_time_s("S0", 20.0)) + 1e-6,
+                                  float(thicker.arrival_time_s("S0", 20.0)) + 1e-6],
+        "a0_baseline_arrival_envelope_s": [float(nominal.arrival_time_s("A0", 45.0)) + 2e-6,
+                                           float(nominal.arrival_time_s("A0", 45.0)) + 2e-6,
+                                           float(thicker.arrival_time_s("A0", 20.0)) + 2e-6],
+        "capture_peak_frequency_hz": [150e3] * 3, "sample_rate_hz": [10e6] * 3})
+    reasons = chk.reasons(probe)
+    assert reasons[0] == []                      # hot but in family
+    # a 45 degC A0 arrival read as if at 20 degC: 25 K x ~2.5e-4/K ~ 0.6 % -- inside the 2 % floor
+    assert not any("A0" in r for r in reasons[1])
+    assert any("baseline A0 arrival" in r and "flange thickness" in r for r in reasons[2])
+    rel = (thicker.arrival_time_s("A0", 20.0) - nominal.arrival_time_s("A0", 20.0)) / nominal.arrival_time_s("A0", 20.0)
+    assert -0.07 < rel < -0.025
