@@ -6,12 +6,13 @@ file (or no file) in place. Every writer in waneguide goes through here.
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import os
 import tempfile
 from pathlib import Path
 from typing import Iterator
 
-__all__ = ["atomic_path", "atomic_write_bytes", "atomic_write_text"]
+__all__ = ["atomic_path", "atomic_write_bytes", "atomic_write_text", "file_sha256"]
 
 
 @contextlib.contextmanager
@@ -50,3 +51,12 @@ def atomic_write_bytes(target: str | os.PathLike, data: bytes) -> Path:
 def atomic_write_text(target: str | os.PathLike, text: str, encoding: str = "utf-8") -> Path:
     """Write ``text`` to ``target`` atomically; returns the target path."""
     return atomic_write_bytes(target, text.encode(encoding))
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """Hex SHA-256 of a file's bytes, read in 4 MiB blocks (integrity manifests)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 22), b""):
+            h.update(block)
+    return h.hexdigest()

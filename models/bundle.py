@@ -92,11 +92,9 @@ _VERSION_RE = re.compile(r"^v(\d{3,})$")
 # small pieces
 # ---------------------------------------------------------------------------
 def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
+    from features.atomic import file_sha256
+
+    return file_sha256(path)
 
 
 def _toml_value(v) -> str:

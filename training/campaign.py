@@ -269,11 +269,9 @@ def _write_npz(path: Path, arrays: dict[str, np.ndarray]) -> str:
 
 
 def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 22), b""):
-            h.update(block)
-    return h.hexdigest()
+    from features.atomic import file_sha256
+
+    return file_sha256(path)
 
 
 def _chunk_name(k: int) -> str:
