@@ -16,7 +16,6 @@ differential ones. Column names, units and meanings: :mod:`features.schema`.
 """
 from __future__ import annotations
 
-import math
 import time
 from dataclasses import dataclass
 from typing import Iterable, Sequence

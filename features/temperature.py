@@ -190,7 +190,6 @@ def baseline_stretch(
     # the searches correlate every ``stride``-th sample: a sum over samples of the product
     # of two band-limited records equals its integral while the product's band (twice the
     # signal's) stays below the reduced Nyquist frequency; the final figures use every sample
-    idx = idx_full[::stride]
     t = t_full[::stride]
     pretrigger_s = pretrigger_s + origin_s  # index of time t (relative to origin): (t + pre + origin) fs
     xw_full = x[:, start:stop]

@@ -13,7 +13,6 @@ from __future__ import annotations
 import numpy as np
 from scipy.optimize import nnls
 from sklearn.base import BaseEstimator, RegressorMixin, clone
-from sklearn.model_selection import GroupKFold
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 __all__ = ["grouped_folds", "oof_predictions", "blend_weights", "GroupedCVBlend"]

@@ -32,7 +32,6 @@ from __future__ import annotations
 
 import copy
 import datetime as _dt
-import hashlib
 import json
 import math
 import os

@@ -12,7 +12,6 @@ MLflow is imported lazily; see :mod:`training.tracking` for the store defaults
 """
 from __future__ import annotations
 
-import os
 import re
 import tempfile
 import warnings

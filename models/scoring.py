@@ -29,7 +29,7 @@ import math
 import os
 import uuid
 from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any, Sequence
 
 import numpy as np
 
@@ -332,7 +332,6 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
         rate, missing path_id), a capture without a baseline of its path, a bundle that
         fails its integrity check, bad ``limit_pct``/``n_jobs``/``chunk_size``.
     """
-    import pandas as pd
 
     from models.history import History
 

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import json
 import hashlib
-import math
 
 import numpy as np
 import pandas as pd

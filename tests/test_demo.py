@@ -6,7 +6,6 @@ it; the hands-on readings are sampled from the same profiles.
 """
 from __future__ import annotations
 
-import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats

@@ -203,7 +203,6 @@ def _site(family: Family, fm: ForwardModel, row, seed: int):
 def _simulate_chunk(fm: ForwardModel, plan: pd.DataFrame, seed: int) -> dict[str, np.ndarray]:
     """Waveforms, baselines, profiles and truth of the cases in ``plan`` (a slice of the plan)."""
     family = fm.family
-    n = len(plan)
     t_nom = fm.nominal_thickness_m
     spec_rows = plan.drop_duplicates("specimen_index")
     sites = {int(r.specimen_index): _site(family, fm, r, seed) for r in spec_rows.itertuples()}
