@@ -33,6 +33,7 @@ from .quality import CaptureRejected, QualityReport, assess_quality, assess_qual
 from .schema import FEATURE_SCHEMA_VERSION, METADATA_COLUMNS, feature_columns
 from .signals import decimated_analytic, excitation_band_hz, mode_windows, parabolic_peak, tukey_gate
 from .temperature import ThermalModel, baseline_stretch, select_baseline
+from .thickness_gauge import BaselineThicknessGauge
 
 __all__ = ["FeatureExtractor", "extract_feature_table", "build_feature_file", "FEATURE_GROUPS"]
 
@@ -75,6 +76,7 @@ class _Plan:
     peak_half_width: int
     edge_half_width: int
     stride: int
+    a0_gauge: BaselineThicknessGauge | None = None
 
 
 class FeatureExtractor:
@@ -161,6 +163,8 @@ class FeatureExtractor:
                 float(cand[1] - cand[0]),
             )
         s0, a0 = modes["S0"], modes["A0"]
+        f_a0 = np.arange(a0.n_fft // 2 + 1) * fs / a0.n_fft
+        gauge = BaselineThicknessGauge(fam, self.thermal, f_a0[a0.band_bins], a0.start / fs - pre)
         sig_start, sig_stop = s0.start, max(s0.stop, a0.stop)
         sig_len = sig_stop - sig_start
         sig_gate = tukey_gate(sig_len, 0, sig_len, taper_samples=int(_TAPER_FRACTION * sig_len / 2))
@@ -169,7 +173,8 @@ class FeatureExtractor:
         burst_samples = cycles / f0 * fs
         return _Plan(fs, pre, n, modes, sig_start, sig_stop, sig_gate,
                      sfft.next_fast_len(2 * sig_len, real=True), max(max_stretch, 0.004), burst_centre,
-                     max(1, int(burst_samples / 8 / stride)), max(0, int(burst_samples / 14 / stride)), stride)
+                     max(1, int(burst_samples / 8 / stride)), max(0, int(burst_samples / 14 / stride)), stride,
+                     gauge)
 
     # ------------------------------------------------------------------ core
     def _core(self, plan: _Plan, W: np.ndarray, B: np.ndarray, T: np.ndarray, Tb: np.ndarray,
@@ -225,6 +230,10 @@ class FeatureExtractor:
             out[f"{p}_shift_phase_s"] = ph / fs
             out[f"{p}_xcorr_coefficient"] = d.peak_correlation
             add("arrivals", t0)
+            if mode == "A0" and plan.a0_gauge is not None:
+                t0 = tick()
+                out["baseline_a0_thickness_ratio"] = plan.a0_gauge.thickness_ratio(R[:, mp.band_bins], Tb)
+                add("physics_check", t0)
 
             t0 = tick()
             ex = (xs * xs).sum(-1)

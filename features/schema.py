@@ -28,7 +28,7 @@ __all__ = [
     "read_feature_table",
 ]
 
-FEATURE_SCHEMA_VERSION = 1
+FEATURE_SCHEMA_VERSION = 2
 MODES = ("s0", "a0")
 METADATA_COLUMNS = ("file", "path_id", "captured_at", "temperature_c", "quality_flags", "baseline_file")
 
@@ -83,6 +83,9 @@ _GLOBAL: tuple[tuple[str, str, str, str], ...] = (
     ("baseline_s0_arrival_s", "s", "physics_check", "baseline S0 envelope arrival (checks path length and material)"),
     ("capture_peak_frequency_hz", "Hz", "physics_check", "frequency of the spectral peak of the capture's S0-to-A0 window (checks the excitation)"),
     ("sample_rate_hz", "Hz", "physics_check", "sampling rate of the capture"),
+    ("baseline_a0_thickness_ratio", "1", "physics_check", "baseline flange thickness over nominal from the A0 window: "
+     "candidate whose Rayleigh-Lamb A0 delay over the path (with free S0 end-echo terms, temperature-scaled) best "
+     "fits the baseline spectrum by least squares (features.thickness_gauge; checks the flange thickness)"),
 )
 
 

@@ -21,7 +21,9 @@ construction.
 
 Physics part (:class:`PhysicsChecker`): readable reasons when the baseline S0
 arrival does not fit the family's path length / alloy, when the baseline A0
-arrival does not fit its flange thickness, when the received frequency content
+arrival does not fit its flange thickness, when the baseline A0 thickness gauge
+(features.thickness_gauge: Rayleigh-Lamb least-squares fit of the A0 window with
+free S0 end-echo terms) departs from the in-family value, when the received frequency content
 is off the excitation, or when the sample rate differs. Expected arrivals are
 Rayleigh-Lamb group delays spacing / c_g(f_c, d_nominal) at the baseline's
 temperature (features.temperature.ThermalModel); an offset common to the
@@ -42,7 +44,8 @@ from sklearn.utils.validation import check_is_fitted, validate_data
 __all__ = ["MismatchDetector", "PhysicsChecker", "PHYSICS_FEATURES", "combine_mismatch"]
 
 #: Features the physics checks read (produced by features.extractor).
-PHYSICS_FEATURES = ("baseline_s0_arrival_s", "capture_peak_frequency_hz", "sample_rate_hz")
+PHYSICS_FEATURES = ("baseline_s0_arrival_s", "capture_peak_frequency_hz", "sample_rate_hz",
+                    "baseline_a0_thickness_ratio")
 
 
 def _pack_forest(iforest) -> dict:
@@ -277,6 +280,10 @@ class PhysicsChecker:
     sample_rate_rel_tol : float, default 1e-3
     spread_factor : float, default 6
         Tolerances widen to ``spread_factor`` robust standard deviations of the in-family values.
+    thickness_rel_tol : float, default 0.03
+        Least tolerance on the baseline A0 thickness gauge (features.thickness_gauge), as a
+        fraction of the nominal thickness; it also widens to ``spread_factor`` robust standard
+        deviations and 1.25 x the ``tail_quantile`` of the in-family deviations.
     tail_quantile : float, default 0.999
         Arrival tolerances also widen to 1.25 x this quantile of the in-family absolute
         deviations, so that the physics checks alone flag at most about 0.1 % of in-family
@@ -292,8 +299,9 @@ class PhysicsChecker:
     )
 
     def __init__(self, family, *, arrival_rel_tol=0.0075, a0_arrival_rel_tol=0.02, frequency_rel_tol=0.25,
-                 sample_rate_rel_tol=1e-3, spread_factor=6.0, tail_quantile=0.999):
+                 sample_rate_rel_tol=1e-3, spread_factor=6.0, tail_quantile=0.999, thickness_rel_tol=0.03):
         self.family = family
+        self.thickness_rel_tol = thickness_rel_tol
         self.tail_quantile = tail_quantile
         self.arrival_rel_tol = arrival_rel_tol
         self.a0_arrival_rel_tol = a0_arrival_rel_tol
@@ -355,6 +363,13 @@ class PhysicsChecker:
                 st[f"{mode.lower()}_offset_s"] = med
                 st[f"{mode.lower()}_spread_s"] = float(1.4826 * np.median(np.abs(r - med)))
                 st[f"{mode.lower()}_tail_s"] = float(1.25 * np.quantile(np.abs(r - med), self.tail_quantile))
+        g = self._column(feature_df, ("baseline_a0_thickness_ratio",), len(feature_df))
+        g = g[np.isfinite(g)]
+        if g.size:
+            med = float(np.median(g))
+            st["thickness_median"] = med
+            st["thickness_spread"] = float(1.4826 * np.median(np.abs(g - med)))
+            st["thickness_tail"] = float(1.25 * np.quantile(np.abs(g - med), self.tail_quantile))
         f = self._column(feature_df, ("capture_peak_frequency_hz",), len(feature_df))
         f = f[np.isfinite(f)]
         if f.size:
@@ -373,7 +388,8 @@ class PhysicsChecker:
     def params(self) -> dict:
         return {"arrival_rel_tol": self.arrival_rel_tol, "a0_arrival_rel_tol": self.a0_arrival_rel_tol,
                 "frequency_rel_tol": self.frequency_rel_tol, "sample_rate_rel_tol": self.sample_rate_rel_tol,
-                "spread_factor": self.spread_factor, "tail_quantile": self.tail_quantile}
+                "spread_factor": self.spread_factor, "tail_quantile": self.tail_quantile,
+                "thickness_rel_tol": self.thickness_rel_tol}
 
     def reasons(self, feature_df: pd.DataFrame) -> list[list[str]]:
         """One list of readable reasons per row (empty list: passes)."""
@@ -399,6 +415,19 @@ class PhysicsChecker:
                     f"({centre * 1e6:.2f} +- {tol * 1e6:.2f} us expected at the baseline temperature for the "
                     f"{fam.path.transducer_spacing_mm:g} mm path in {fam.section.flange_thickness_mm:g} mm {mat}; "
                     f"Rayleigh-Lamb {mode} group delay {expected[i] * 1e6:.2f} us): {advice}")
+        # 1b. baseline A0 thickness gauge vs the flange thickness
+        g = self._column(feature_df, ("baseline_a0_thickness_ratio",), n)
+        if "thickness_median" in st:
+            gcen = st["thickness_median"]
+            gtol = max(self.thickness_rel_tol, self.spread_factor * st.get("thickness_spread", 0.0),
+                       st.get("thickness_tail", 0.0))
+            t_nom_mm = fam.section.flange_thickness_mm
+            for i in np.flatnonzero(np.isfinite(g) & (np.abs(g - gcen) > gtol)):
+                out[i].append(
+                    f"baseline A0 thickness gauge reads {g[i] / gcen * t_nom_mm:.2f} mm against the family's "
+                    f"{t_nom_mm:g} mm flange (accepted {(gcen - gtol) / gcen * t_nom_mm:.2f}-"
+                    f"{(gcen + gtol) / gcen * t_nom_mm:.2f} mm, Rayleigh-Lamb A0 fit of the baseline at its "
+                    f"temperature): check the flange thickness")
         # 2. frequency content vs the excitation
         f = self._column(feature_df, ("capture_peak_frequency_hz",), n)
         fc = st["centre_frequency_hz"]
