@@ -12,7 +12,44 @@ import tempfile
 from pathlib import Path
 from typing import Iterator
 
-__all__ = ["atomic_path", "atomic_write_bytes", "atomic_write_text", "file_sha256"]
+__all__ = ["atomic_path", "atomic_write_bytes", "atomic_write_text", "check_output_dir", "check_output_path", "file_sha256"]
+
+
+def _check_parents(target: Path, what: str) -> None:
+    """The nearest existing ancestor of ``target`` must be a folder."""
+    for parent in target.parents:
+        if parent.exists():
+            if not parent.is_dir():
+                raise ValueError(f"{what} {str(target)!r} lies under {str(parent)!r}, which is a file, not a folder; "
+                                 "give a path inside a folder.")
+            break
+
+
+def check_output_path(target: str | os.PathLike, what: str = "output file") -> Path:
+    """Refuse an output path that cannot become a file: an existing folder, or one under a file.
+
+    Call it before long work so that a bad ``--out`` fails at once; :func:`atomic_path`
+    calls it too.
+
+    Raises
+    ------
+    ValueError
+        Naming ``what``, the path and the fix.
+    """
+    target = Path(target)
+    if target.is_dir():
+        raise ValueError(f"{what} {str(target)!r} is an existing folder; give a file name (e.g. {str(target / 'out')!r}).")
+    _check_parents(target, what)
+    return target
+
+
+def check_output_dir(target: str | os.PathLike, what: str = "output folder") -> Path:
+    """Refuse an output folder path that is an existing file or lies under a file."""
+    target = Path(target)
+    if target.exists() and not target.is_dir():
+        raise ValueError(f"{what} {str(target)!r} is an existing file, not a folder; give a folder path.")
+    _check_parents(target, what)
+    return target
 
 
 @contextlib.contextmanager
@@ -22,7 +59,7 @@ def atomic_path(target: str | os.PathLike, *, suffix: str | None = None) -> Iter
     The caller writes the temporary file by any means (pandas, h5py, matplotlib).
     On an exception the temporary file is removed and ``target`` is untouched.
     """
-    target = Path(target)
+    target = check_output_path(target)
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(
         prefix=f".{target.name}.", suffix=suffix if suffix is not None else (target.suffix + ".part"),

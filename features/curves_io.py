@@ -14,6 +14,10 @@ from .materials import Material, resolve_material
 __all__ = ["compute_dispersion_table", "write_dispersion_csv", "plot_dispersion"]
 
 MAX_POINTS = 20_000
+#: Highest frequency-thickness product traced [MHz mm]. About one new mode pair per
+#: (c_T / 2) ~ 1.5 MHz mm in aluminium (cut-offs n c_T / 2, Graff 1975 sec. 8.1), so 100 MHz mm is
+#: already ~130 modes; guided-wave monitoring works below ~10 MHz mm (common practice, no source).
+MAX_FD_MHZ_MM = 100.0
 
 
 def compute_dispersion_table(
@@ -35,6 +39,9 @@ def compute_dispersion_table(
     mat = resolve_material(material)
     t_mm = validate_positive_scalar(thickness_mm, "--thickness-mm", unit="mm", hint="Give the plate thickness, e.g. 2.0.")
     f_khz = validate_positive_scalar(fmax_khz, "--fmax-khz", unit="kHz", hint="Give the highest frequency, e.g. 1000.")
+    if f_khz * 1e-3 * t_mm > MAX_FD_MHZ_MM:
+        raise ValueError(f"--fmax-khz x --thickness-mm = {f_khz * 1e-3 * t_mm:g} MHz mm is above the {MAX_FD_MHZ_MM:g} "
+                         "MHz mm traced here; give a lower --fmax-khz (e.g. 1000 for a 2 mm plate).")
     if isinstance(points, bool) or not isinstance(points, (int, np.integer)) or not 2 <= points <= MAX_POINTS:
         raise ValueError(f"--points must be a whole number from 2 to {MAX_POINTS}; got {points!r}.")
     thickness_m = t_mm * 1e-3

@@ -16,6 +16,7 @@ differential ones. Column names, units and meanings: :mod:`features.schema`.
 """
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass
 from typing import Iterable, Sequence
@@ -439,8 +440,11 @@ class FeatureExtractor:
                 f"{capture.source or '(in memory)'} is from path {capture.path_id!r}; a baseline must come from "
                 "the same transducer path. Give baselines recorded on that path."
             )
-        if baseline.sample_rate_hz != capture.sample_rate_hz or baseline.n_samples != capture.n_samples \
-                or baseline.pretrigger_s != capture.pretrigger_s:
+        # equal within rounding: a CSV without a sample_rate_hz header gets its rate from the time
+        # column (features.io.csv_format), which differs from the header value in the last digits
+        fs = baseline.sample_rate_hz
+        if not math.isclose(fs, capture.sample_rate_hz, rel_tol=1e-6) or baseline.n_samples != capture.n_samples \
+                or abs(baseline.pretrigger_s - capture.pretrigger_s) > 1e-2 / fs:
             raise ValueError(
                 f"baseline {baseline.source or '(in memory)'} ({baseline.n_samples} samples at "
                 f"{baseline.sample_rate_hz:g} Hz, pretrigger {baseline.pretrigger_s:g} s) does not match capture "
@@ -597,10 +601,14 @@ def extract_feature_table(
 def build_feature_file(family_path, captures, baselines, out_path, *, n_jobs: int = 1,
                        on_reject: str = "raise") -> pd.DataFrame:
     """Library side of ``waneguide features``: read, extract, write Parquet atomically."""
+    from .atomic import check_output_path
     from .family import load_family
     from .io import read_captures
     from .schema import write_feature_table
 
+    if isinstance(n_jobs, bool) or int(n_jobs) != n_jobs or n_jobs == 0 or n_jobs < -1:
+        raise ValueError(f"n_jobs (--jobs) must be a positive integer (or -1 for all cores); got {n_jobs!r}.")
+    check_output_path(out_path, "feature table (--out)")
     family = load_family(family_path)
     caps = read_captures(captures)
     bases = read_captures(baselines)

@@ -373,8 +373,11 @@ def _format_errors(exc: ValidationError, where: str) -> str:
             msg = "unknown key (not part of the family schema)"
         got = err.get("input")
         got_txt = "" if isinstance(got, dict) else f"; got {got!r}"
-        lines.append(f"{where}: {loc}: {msg}{got_txt}")
-    return "\n".join(lines)
+        lines.append(f"{loc}: {msg}{got_txt}")
+    # one line (the CLI prints one line per error); several problems are listed with "; "
+    if len(lines) == 1:
+        return f"{where}: {lines[0]}"
+    return f"{where}: {len(lines)} problems: " + "; ".join(lines)
 
 
 def family_from_mapping(data: dict[str, Any], *, where: str = "family") -> Family:
@@ -395,4 +398,9 @@ def load_family(path: str | Path) -> Family:
         raise ValueError(f"family file {str(p)!r} does not exist.") from None
     except tomllib.TOMLDecodeError as exc:
         raise ValueError(f"family file {str(p)!r} is not valid TOML: {exc}.") from None
+    except (IsADirectoryError, NotADirectoryError):
+        raise ValueError(f"family file {str(p)!r} is a folder or lies under a file; give the family's .toml file.") from None
+    except UnicodeDecodeError as exc:
+        raise ValueError(f"family file {str(p)!r} is not UTF-8 text ({exc.reason} at byte {exc.start}); "
+                         "give the family's .toml file.") from None
     return family_from_mapping(data, where=str(p))

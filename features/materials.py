@@ -297,6 +297,12 @@ def load_material(path: str | Path) -> Material:
         raise ValueError(f"material file {str(p)!r} does not exist.") from None
     except tomllib.TOMLDecodeError as exc:
         raise ValueError(f"material file {str(p)!r} is not valid TOML: {exc}.") from None
+    except (IsADirectoryError, NotADirectoryError):
+        raise ValueError(f"material file {str(p)!r} is a folder or lies under a file; give a material .toml file "
+                         "or a built-in name (see `waneguide materials`).") from None
+    except UnicodeDecodeError as exc:
+        raise ValueError(f"material file {str(p)!r} is not UTF-8 text ({exc.reason} at byte {exc.start}); "
+                         "give a material .toml file.") from None
     if set(data) != {"material"}:
         raise ValueError(f"material file {str(p)!r} must hold exactly one [material] table; got {sorted(data)}.")
     return material_from_mapping(data["material"], where=f"{p}: [material]")

@@ -39,6 +39,7 @@ from models.drift import PSI_MAJOR, PageHinkley, cusum_arl_siegmund, feature_dri
 
 __all__ = [
     "AuditSettings",
+    "check_audit_options",
     "AuditResult",
     "TARGETS",
     "VERDICTS",
@@ -663,6 +664,27 @@ def _reference_sample(bundle):
     return None
 
 
+def check_audit_options(*, limit_pct: float | None = None, report_path=None) -> float | None:
+    """Refuse a bad limit or report path before any work (and before the history is appended to).
+
+    Returns the limit as a float (or None). The limit follows the rule of scoring
+    (:func:`models.scoring.score_captures`): 0 < L < 100 [% of nominal thickness].
+    """
+    import math
+
+    if limit_pct is not None:
+        lp = float(limit_pct)
+        if not (math.isfinite(lp) and 0 < lp < 100):
+            raise ValueError(f"limit_pct (--limit-pct) must be a wall loss in percent of nominal thickness, "
+                             f"0 < L < 100; got {limit_pct!r}.")
+        limit_pct = lp
+    if report_path is not None:
+        from features.atomic import check_output_path
+
+        check_output_path(report_path, "audit report (--report)")
+    return limit_pct
+
+
 def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=None,
               recalibrate: bool = False, settings: AuditSettings | None = None,
               tracking_uri: str | None = None, limit_pct: float | None = None) -> AuditResult:
@@ -688,6 +710,7 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
     from models.history import History
     from models.readings import read_readings
 
+    limit_pct = check_audit_options(limit_pct=limit_pct, report_path=report_path)
     if isinstance(bundle, (str, Path)):
         from models.bundle import load_bundle
 

@@ -24,6 +24,8 @@ received and the rule.
 """
 from __future__ import annotations
 
+from datetime import datetime
+
 import math
 from pathlib import Path
 
@@ -89,7 +91,8 @@ def read_readings(path: str | Path):
             raise _bad(p, line, "method", method, "must say how the reading was taken (e.g. UT gauge)")
         methods.append(method)
         try:
-            ts = pd.Timestamp(row["date"])
+            # strict ISO 8601: pd.Timestamp alone reads '2nd of March' as year 1 and 03/02/2024 as March 2
+            ts = pd.Timestamp(datetime.fromisoformat(str(row["date"]).strip().replace("Z", "+00:00")))
             if pd.isna(ts):
                 raise ValueError
         except (ValueError, TypeError):

@@ -1,7 +1,6 @@
 """Materials: elastic relations, temperature model, table, config files, validation."""
 from __future__ import annotations
 
-import math
 
 import pytest
 
@@ -79,6 +78,12 @@ def test_user_material_file(repo_root, tmp_path):
     m = load_material(repo_root / "configs" / "materials" / "example_user_alloy.toml")
     assert m.cl_m_s == pytest.approx(6320.0, rel=1e-12)
     assert m.ct_m_s == pytest.approx(3130.0, rel=1e-12)
+    # the file's bulk velocities become (E, nu) by the isotropic relations (Graff 1975, ch. 5;
+    # Rose 1999, ch. 4): nu = (cL^2 - 2 cT^2) / (2 (cL^2 - cT^2)), E = rho cT^2 (3 cL^2 - 4 cT^2) / (cL^2 - cT^2);
+    # the two lines above only prove the round trip. Tolerance: float round-off of the algebra.
+    cl2, ct2 = 6320.0**2, 3130.0**2
+    assert m.poisson_ratio == pytest.approx((cl2 - 2 * ct2) / (2 * (cl2 - ct2)), rel=1e-12)
+    assert m.youngs_modulus_pa == pytest.approx(2700.0 * ct2 * (3 * cl2 - 4 * ct2) / (cl2 - ct2), rel=1e-12)
     assert resolve_material(str(repo_root / "configs" / "materials" / "example_user_alloy.toml")) == m
     bad = tmp_path / "bad.toml"
     bad.write_text("[material]\nname='x'\nyoungs_modulus_gpa=70\npoisson_ratio=0.3\ndensity_kg_m3=2700\ncolour='red'\n")
@@ -91,4 +96,6 @@ def test_user_material_file(repo_root, tmp_path):
     gpa = tmp_path / "gpa.toml"
     gpa.write_text("[material]\nname='g'\nyoungs_modulus_gpa=70\npoisson_ratio=0.3\ndensity_kg_m3=2700\n")
     assert load_material(gpa).youngs_modulus_pa == pytest.approx(70e9)
-    assert math.isfinite(load_material(gpa).plate_velocity_m_s)
+    # S0 low-frequency (plate) velocity from E, nu, rho: sqrt(E / (rho (1 - nu^2))) = 5337.6 m/s for
+    # 70 GPa, 0.3, 2700 kg/m^3 (Graff 1975, sec. 8.1; Rose 1999, ch. 8); tolerance: the 5 digits quoted
+    assert load_material(gpa).plate_velocity_m_s == pytest.approx(5337.6, rel=2e-5)

@@ -413,7 +413,9 @@ def run_campaign(
 
         if not isinstance(scheduler, Client):
             raise ValueError(f"scheduler must be a Dask address or a dask.distributed.Client; got {type(scheduler).__name__}.")
-    out = Path(out_dir)
+    from features.atomic import check_output_dir
+
+    out = check_output_dir(out_dir, "campaign folder (--out)")
     fingerprint = campaign_fingerprint(family, n, seed=seed, chunk_size=chunk_size)
     old = _read_manifest(out)
     if old is None and out.exists() and any(out.iterdir()):

@@ -356,14 +356,29 @@ def read_measured(csv_path, family) -> tuple[pd.DataFrame, pd.DataFrame, np.ndar
 
     csv_path = Path(csv_path)
     if not csv_path.is_file():
-        raise ValueError(f"measured CSV {str(csv_path)!r} does not exist")
-    tab = pd.read_csv(csv_path)
+        raise ValueError(f"measured CSV {str(csv_path)!r} does not exist or is not a file")
+    try:
+        tab = pd.read_csv(csv_path)
+    except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise ValueError(f"{csv_path}: not a readable measured-cases CSV ({str(exc).strip().splitlines()[0]}); "
+                         "expected a header line with 'file' and target columns") from None
     if "file" not in tab.columns:
         raise ValueError(f"{csv_path}: needs a 'file' column (capture path relative to the CSV); "
                          f"got columns {list(tab.columns)}")
     tcols = [t for t in TARGETS if t in tab.columns]
     if not tcols:
         raise ValueError(f"{csv_path}: needs at least one target column of {list(TARGETS)}; got {list(tab.columns)}")
+    for t in tcols:  # blank = not measured; anything else must be a loss in range
+        raw = tab[t]
+        num = pd.to_numeric(raw, errors="coerce")
+        upper = 100.0 if t.endswith("_pct") else np.inf
+        bad = (raw.notna() & num.isna()) | ~(num.isna() | ((num >= 0) & (num < upper)))
+        if bad.any():
+            i = int(np.flatnonzero(bad.to_numpy())[0])
+            rule = "a wall loss from 0 to below 100 [% of nominal]" if upper == 100.0 else "a wall loss >= 0 [mm]"
+            raise ValueError(f"{csv_path}: row {i + 2}, column {t}: must be {rule} (or blank when not measured); "
+                             f"got {str(raw.iloc[i])!r}")
+        tab[t] = num
     root = csv_path.parent
     caps = [read_capture(root / str(f)) for f in tab["file"]]
     paths = (tab["path_id"].astype(str).tolist() if "path_id" in tab.columns
@@ -448,15 +463,31 @@ def train_model(family, campaign_dir, out_dir, *, measured_csv=None, tracking_ur
 
     from .tracking import TrackedRun, experiment_name
 
+    from features.atomic import check_output_dir
+
     t_start = time.perf_counter()
     cfg = config or TrainConfig()
+    # settings first, so that a bad one fails before any work or any file is written
+    if not (isinstance(cfg.coverage, (int, float)) and 0.0 < float(cfg.coverage) < 1.0):
+        raise ValueError(f"coverage (--coverage) must lie strictly between 0 and 1; got {cfg.coverage!r}")
+    if random_state is not None and (isinstance(random_state, bool) or not isinstance(random_state, (int, np.integer))
+                                     or random_state < 0):
+        raise ValueError(f"random_state (--seed) must be a non-negative whole number; got {random_state!r}")
+    out_dir = check_output_dir(out_dir, "model store (--out)")
     fam, fam_toml = _load_family(family)
     camp = load_campaign(campaign_dir)
     if camp.family_fingerprint != fam.fingerprint:
         raise ValueError(f"campaign {str(campaign_dir)!r} was simulated for family fingerprint "
                          f"{camp.family_fingerprint}, but {fam.name} has {fam.fingerprint}; "
                          f"re-run the campaign for this family")
-    out_dir = Path(out_dir)
+    # measured cases are read before the (long) fit so that a bad CSV fails at once
+    measured = read_measured(measured_csv, fam) if measured_csv is not None else None
+    if measured is not None:  # ModelBundle.recalibrate needs at least 2 values per target
+        for t in measured[1].columns:
+            n_ok = int(np.isfinite(measured[1][t].to_numpy(dtype=float)).sum())
+            if n_ok < 2:
+                raise ValueError(f"{measured_csv}: target {t} has {n_ok} measured case(s) with a value (zero-loss "
+                                 "baseline rows not counted); at least 2 are needed, or leave the column out")
     msgs: list[str] = []
     feats = _cached_features(fam, camp, out_dir / ".cache", progress=progress, n_jobs=n_jobs)
     cases = camp.cases.reset_index(drop=True)
@@ -496,9 +527,12 @@ def train_model(family, campaign_dir, out_dir, *, measured_csv=None, tracking_ur
         metrics["mismatch"]["shifts"] = mismatch_study(bundle, fam, p_in, n_cases=shift_cases,
                                                        seed=random_state + 1, work_dir=out_dir / ".cache",
                                                        progress=progress)
-    if measured_csv is not None:
-        mf, mt, mg = read_measured(measured_csv, fam)
-        bundle = bundle.recalibrate(mf, mt, groups=mg, random_state=random_state)
+    if measured is not None:
+        mf, mt, mg = measured
+        try:
+            bundle = bundle.recalibrate(mf, mt, groups=mg, random_state=random_state)
+        except ValueError as exc:
+            raise ValueError(f"{measured_csv}: measured cases cannot recalibrate the model: {exc}") from None
         metrics["measured"] = {t: {"n": r["n"], "correction": r["correction"], "mae_without": r["cv_mae"]["none"],
                                    "mae_with": r["cv_mae"][r["correction"]]}
                                for t, r in bundle.meta["recalibration"].items()}

@@ -34,9 +34,10 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from models.audit import AuditSettings, format_audit, run_audit
+    from models.audit import AuditSettings, check_audit_options, format_audit, run_audit
     from models.scoring import load_model
 
+    check_audit_options(limit_pct=args.limit_pct, report_path=args.report)  # before loading the model
     bundle = load_model(args.model, tracking_uri=args.tracking_uri)
     result = run_audit(bundle, args.readings, db_url=args.db, report_path=args.report,
                        recalibrate=args.recalibrate, settings=AuditSettings(window_days=args.window_days),

@@ -20,5 +20,8 @@ def run(args) -> int:
 
     if args.workers < 1:
         raise ValueError(f"--workers must be a positive integer; got {args.workers}.")
+    from features.atomic import check_output_dir
+
+    check_output_dir(args.out, "demo output folder (--out)")
     run_demo(args.out, quick=args.quick, progress=not args.no_progress, workers=args.workers)
     return 0

@@ -21,8 +21,12 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    from features.atomic import check_output_path
     from features.curves_io import compute_dispersion_table, plot_dispersion, write_dispersion_csv
 
+    check_output_path(args.out, "curves CSV (--out)")  # both outputs checked before any is written
+    if args.plot is not None:
+        check_output_path(args.plot, "plot (--plot)")
     curves = compute_dispersion_table(
         args.material,
         thickness_mm=args.thickness_mm,

@@ -38,8 +38,11 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    from features.atomic import check_output_path
     from models.scoring import format_scores, score_captures, write_scores_csv
 
+    if args.out is not None:  # fail before scoring, not after
+        check_output_path(args.out, "results CSV (--out)")
     captures = args.captures[0] if len(args.captures) == 1 else args.captures
     df = score_captures(
         args.model, captures, baselines=args.baselines, limit_pct=args.limit_pct, db_url=args.db,

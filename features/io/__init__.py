@@ -114,6 +114,8 @@ def capture_files(dir_or_files: str | os.PathLike | Iterable[str | os.PathLike])
                 )
             files.extend(found)
         else:
+            if not p.exists():
+                raise FileNotFoundError(f"capture file or folder {str(p)!r} does not exist.")
             _suffix(p)
             if not p.is_file():
                 raise FileNotFoundError(f"capture file {str(p)!r} does not exist.")

@@ -26,12 +26,13 @@ __all__ = ["read_mat_capture", "write_mat_capture"]
 
 def _read_v5(path, where):
     import scipy.io
+    from scipy.io.matlab import MatReadError
 
     try:
         data = scipy.io.loadmat(path, squeeze_me=True, chars_as_strings=True)
     except NotImplementedError:
         return None  # v7.3: HDF5
-    except (ValueError, TypeError, OSError, IndexError, EOFError) as exc:
+    except (MatReadError, ValueError, TypeError, OSError, IndexError, EOFError) as exc:
         raise CorruptFileError(f"{where}: not a readable MATLAB .mat file ({exc}).") from None
     return {k: v for k, v in data.items() if not k.startswith("__")}
 
