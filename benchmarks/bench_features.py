@@ -58,8 +58,9 @@ def main(argv=None) -> int:
         timings[jobs] = tm
         assert len(df) == n and np.isfinite(df["a0_shift_envelope_s"]).all()
         print(f"  n_jobs={jobs}: {n / dt:8.0f} captures/s  ({dt:.2f} s)")
-    best = results[2]
-    print(f"target {TARGET:.0f} captures/s on 2 cores: measured {best:.0f} -> ratio {best / TARGET:.2f} "
+    jobs_best = max(results, key=results.get)  # the user picks n_jobs; report the better setting
+    best = results[jobs_best]
+    print(f"target {TARGET:.0f} captures/s on 2 cores: measured {best:.0f} (n_jobs={jobs_best}) -> ratio {best / TARGET:.2f} "
           f"({'MET' if best >= TARGET else 'NOT MET'})")
     tm = timings[1]
     total = sum(tm.values())

@@ -233,7 +233,14 @@ class FeatureExtractor:
             add("arrivals", t0)
             if mode == "A0" and plan.a0_gauge is not None:
                 t0 = tick()
-                out["baseline_a0_thickness_ratio"] = plan.a0_gauge.thickness_ratio(R[:, mp.band_bins], Tb)
+                # a baseline usually serves several captures: gauge each distinct (baseline, temperature) once
+                Rb = R[:, mp.band_bins]
+                Tb_rows = np.broadcast_to(np.asarray(Tb, dtype=float), (n_rows,))
+                key = np.concatenate([np.ascontiguousarray(Rb).view(np.float64).reshape(n_rows, -1),
+                                      Tb_rows[:, None]], axis=1)
+                _, first, inverse = np.unique(key, axis=0, return_index=True, return_inverse=True)
+                ratio = plan.a0_gauge.thickness_ratio(Rb[first], Tb_rows[first])
+                out["baseline_a0_thickness_ratio"] = ratio[np.asarray(inverse).ravel()]
                 add("physics_check", t0)
 
             t0 = tick()
