@@ -360,7 +360,7 @@ def _reach(est, lower, upper, truth, u, level: float, coverage_nominal: float) -
 
 def residual_summary(est, lower, upper, truth, u_truth=None, *, coverage_nominal: float,
                      confidence: float = 0.95) -> dict:
-    """Residual statistics of one target over matched pairs (NaN pairs dropped).
+    """Residual statistics of one target over matched pairs (NaN pairs dropped; infinite bands kept).
 
     ``r = est - truth``; bias ``mean(r)`` with the Student-t interval
     ``mean +- t_{(1+confidence)/2, n-1} s / sqrt(n)``; RMSE ``sqrt(mean r^2)``; MAE;
@@ -373,7 +373,9 @@ def residual_summary(est, lower, upper, truth, u_truth=None, *, coverage_nominal
 
     est, lower, upper, truth = (np.asarray(a, dtype=float) for a in (est, lower, upper, truth))
     u = np.full(est.shape, np.nan) if u_truth is None else np.asarray(u_truth, dtype=float)
-    ok = np.isfinite(est) & np.isfinite(truth) & np.isfinite(lower) & np.isfinite(upper)
+    # an infinite band (conformal order statistic beyond the calibration set) is kept: it is a
+    # real, if useless, band and covers every reading; only missing values drop a pair
+    ok = np.isfinite(est) & np.isfinite(truth) & ~np.isnan(lower) & ~np.isnan(upper)
     est, lower, upper, truth, u = est[ok], lower[ok], upper[ok], truth[ok], u[ok]
     n = int(est.size)
     out = {"n": n, "bias": np.nan, "bias_lower": np.nan, "bias_upper": np.nan, "sd": np.nan,

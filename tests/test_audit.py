@@ -241,3 +241,15 @@ def test_reading_uncertainty_widens_the_band_in_quadrature():
     c = calibration_curve([10.0], [9.0], [11.0], [11.5], [1.0], coverage_nominal=0.9).set_index("level")
     # at 50 %: z = 0.6745 -> reach = sqrt((0.6745/1.6449)^2 + 0.6745^2) = 0.7894 < 1.5 -> outside
     assert c.loc[0.5, "empirical"] == 0.0 and c.loc[0.9, "empirical"] == 1.0
+
+
+def test_infinite_band_counts_as_matched_and_covering():
+    # Split conformal with k = ceil((n+1)(1-alpha)) > n gives an infinite band (Vovk et al. 2005;
+    # Lei et al. 2018): such a band covers every reading by definition, and the pair still has a
+    # finite residual. Hand-computed: residuals (+2, -1); bias 0.5; coverage 1/2.
+    sm = residual_summary([12.0, 9.0], [-np.inf, 8.5], [np.inf, 9.5], [10.0, 10.0], coverage_nominal=0.9)
+    assert sm["n"] == 2
+    assert sm["bias"] == pytest.approx(0.5)
+    assert sm["covered"] == 1  # the finite band [8.5, 9.5] misses 10; the infinite one covers
+    assert sm["coverage"] == pytest.approx(0.5)
+    assert sm["mean_band_width"] == np.inf
