@@ -709,10 +709,15 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
     """
     import pandas as pd
 
-    from models.history import History
+    from models.history import History, resolve_db_url, sqlite_file
     from models.readings import read_readings
 
     limit_pct = check_audit_options(limit_pct=limit_pct, report_path=report_path)
+    db_file = sqlite_file(resolve_db_url(db_url))
+    if db_file is not None and not db_file.is_file():
+        # auditing reads the history; never create an empty database for a mistyped path
+        raise ValueError(f"history database {str(db_file)!r} does not exist; give the --db the captures were "
+                         "scored into (`waneguide score --db ...`).")
     if isinstance(bundle, (str, Path)):
         from models.bundle import load_bundle
 

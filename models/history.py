@@ -99,6 +99,20 @@ def resolve_db_url(db_url: str | None) -> str:
     return url
 
 
+def sqlite_file(url: str):
+    """The file of an ``sqlite:///PATH`` URL as a Path (None for other databases or in-memory)."""
+    from pathlib import Path
+
+    if not url.startswith("sqlite"):
+        return None
+    rest = url.split("://", 1)[1] if "://" in url else ""
+    path = rest[1:] if rest.startswith("/") else rest
+    path = path.split("?", 1)[0]
+    if not path or path == ":memory:":
+        return None
+    return Path(path)
+
+
 def capture_content_hash(capture) -> str:
     """SHA-256 of what a capture *is*: its samples and its acquisition metadata.
 

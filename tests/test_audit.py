@@ -253,3 +253,23 @@ def test_infinite_band_counts_as_matched_and_covering():
     assert sm["covered"] == 1  # the finite band [8.5, 9.5] misses 10; the infinite one covers
     assert sm["coverage"] == pytest.approx(0.5)
     assert sm["mean_band_width"] == np.inf
+
+
+def test_audit_refuses_a_missing_history_file_without_creating_it(tmp_path):
+    # Auditing only reads the history: a mistyped SQLite path must be refused, not created empty.
+    from models.audit import run_audit
+    from models.history import sqlite_file
+
+    assert sqlite_file("sqlite:////tmp/x/h.db").as_posix() == "/tmp/x/h.db"
+    assert sqlite_file("sqlite:///:memory:") is None
+    assert sqlite_file("postgresql://u@127.0.0.1/db") is None
+    readings = tmp_path / "r.csv"
+    readings.write_text("path_id,date,position_mm,remaining_thickness_mm,method\nP01,2025-05-01,0,1.9,UT\n")
+    missing = tmp_path / "nope.db"
+
+    class _Bundle:  # run_audit reads the identity only after the database check
+        pass
+
+    with pytest.raises(ValueError, match="does not exist"):
+        run_audit(_Bundle(), readings, db_url=f"sqlite:///{missing}")
+    assert not missing.exists()
