@@ -55,7 +55,10 @@ def main(argv=None) -> int:
         run_campaign(fam, args.cases, camp_dir, seed=2024, workers=2, progress=True)
         print(f"  simulated in {time.perf_counter() - t0:.1f} s")
     camp = load_campaign(camp_dir)
-    fpath = cache / f"features_{camp.fingerprint}.parquet"
+    from features.schema import FEATURE_SCHEMA_VERSION
+
+    # the cache key carries the feature schema version: a new feature set never reuses old tables
+    fpath = cache / f"features_{camp.fingerprint}_v{FEATURE_SCHEMA_VERSION}.parquet"
     if fpath.is_file():
         feats = pd.read_parquet(fpath)
     else:
