@@ -672,14 +672,9 @@ def check_audit_options(*, limit_pct: float | None = None, report_path=None) -> 
     Returns the limit as a float (or None). The limit follows the rule of scoring
     (:func:`models.scoring.score_captures`): 0 < L < 100 [% of nominal thickness].
     """
-    import math
+    from models.scoring import check_limit_pct
 
-    if limit_pct is not None:
-        lp = float(limit_pct)
-        if not (math.isfinite(lp) and 0 < lp < 100):
-            raise ValueError(f"limit_pct (--limit-pct) must be a wall loss in percent of nominal thickness, "
-                             f"0 < L < 100; got {limit_pct!r}.")
-        limit_pct = lp
+    limit_pct = check_limit_pct(limit_pct, "limit_pct (--limit-pct)")
     if report_path is not None:
         from features.atomic import check_output_path
 

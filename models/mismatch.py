@@ -333,6 +333,20 @@ class PhysicsChecker:
                 "centre_frequency_hz": self.family.excitation.centre_frequency_hz,
                 "sample_rate_hz": self.family.acquisition.sample_rate_hz}
 
+    def _robust(self, values):
+        """(median, 1.4826 MAD, 1.25 x the tail quantile of |x - median|) of the finite values, or ().
+
+        1.4826 MAD estimates a Gaussian standard deviation (Rousseeuw & Croux 1993,
+        doi:10.1080/01621459.1993.10476408).
+        """
+        v = np.asarray(values, dtype=float)
+        v = v[np.isfinite(v)]
+        if not v.size:
+            return ()
+        med = float(np.median(v))
+        dev = np.abs(v - med)
+        return med, float(1.4826 * np.median(dev)), float(1.25 * np.quantile(dev, self.tail_quantile))
+
     @staticmethod
     def _column(feature_df, names, n):
         for c in names:
@@ -357,25 +371,16 @@ class PhysicsChecker:
         st = self._base_state()
         for mode, names, _, _ in self._ARRIVALS:
             r, _, _ = self._arrival_residual(mode, names, feature_df)
-            r = r[np.isfinite(r)]
-            if r.size:
-                med = float(np.median(r))
-                st[f"{mode.lower()}_offset_s"] = med
-                st[f"{mode.lower()}_spread_s"] = float(1.4826 * np.median(np.abs(r - med)))
-                st[f"{mode.lower()}_tail_s"] = float(1.25 * np.quantile(np.abs(r - med), self.tail_quantile))
-        g = self._column(feature_df, ("baseline_a0_thickness_ratio",), len(feature_df))
-        g = g[np.isfinite(g)]
-        if g.size:
-            med = float(np.median(g))
-            st["thickness_median"] = med
-            st["thickness_spread"] = float(1.4826 * np.median(np.abs(g - med)))
-            st["thickness_tail"] = float(1.25 * np.quantile(np.abs(g - med), self.tail_quantile))
-        f = self._column(feature_df, ("capture_peak_frequency_hz",), len(feature_df))
-        f = f[np.isfinite(f)]
-        if f.size:
-            med = float(np.median(f))
-            st["frequency_median"] = med
-            st["frequency_spread"] = float(1.4826 * np.median(np.abs(f - med)))
+            key = mode.lower()
+            stats = self._robust(r)
+            if stats:
+                st[f"{key}_offset_s"], st[f"{key}_spread_s"], st[f"{key}_tail_s"] = stats
+        stats = self._robust(self._column(feature_df, ("baseline_a0_thickness_ratio",), len(feature_df)))
+        if stats:
+            st["thickness_median"], st["thickness_spread"], st["thickness_tail"] = stats
+        stats = self._robust(self._column(feature_df, ("capture_peak_frequency_hz",), len(feature_df)))
+        if stats:
+            st["frequency_median"], st["frequency_spread"] = stats[:2]
         self.state = st
         return self
 

@@ -292,6 +292,17 @@ class _Job:
         return _score_chunk(self.bundle, items, self.baselines_by_path, self.limit_pct, self.batch_id)
 
 
+def check_limit_pct(limit_pct, option: str = "limit_pct") -> float | None:
+    """The exceedance limit as a float, 0 < L < 100 [% of nominal thickness], or None."""
+    if limit_pct is None:
+        return None
+    lp = float(limit_pct)
+    if not (math.isfinite(lp) and 0 < lp < 100):
+        raise ValueError(f"{option} must be a wall loss in percent of nominal thickness, 0 < L < 100; "
+                         f"got {limit_pct!r}.")
+    return lp
+
+
 def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None = None,
                    db_url: str | None = None, n_jobs: int = 1, scheduler=None,
                    chunk_size: int = DEFAULT_CHUNK, progress: bool = False,
@@ -335,12 +346,7 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
 
     from models.history import History
 
-    if limit_pct is not None:
-        lp = float(limit_pct)
-        if not (math.isfinite(lp) and 0 < lp < 100):
-            raise ValueError(f"limit_pct must be a wall loss in percent of nominal thickness, 0 < L < 100; "
-                             f"got {limit_pct!r}.")
-        limit_pct = lp
+    limit_pct = check_limit_pct(limit_pct)
     if int(n_jobs) != n_jobs or n_jobs == 0 or n_jobs < -1:
         raise ValueError(f"n_jobs must be a positive integer (or -1 for all cores); got {n_jobs!r}.")
     if int(chunk_size) < 1:
