@@ -100,8 +100,10 @@ def _trend_figure(path_id, rows, surveys, limit_pct):
     ax = fig.add_subplot(1, 1, 1)
     t = _naive(_times(rows["captured_at"]))
     est = rows["max_loss_pct"].to_numpy(float)
-    lo = rows["max_loss_pct_lower"].to_numpy(float)
-    hi = rows["max_loss_pct_upper"].to_numpy(float)
+    # wall loss lies in [0, 100] % of nominal: an infinite band edge is drawn at +-100 %
+    lo_raw = rows["max_loss_pct_lower"].to_numpy(float)
+    lo = np.clip(lo_raw, -100.0, 100.0)
+    hi = np.clip(rows["max_loss_pct_upper"].to_numpy(float), -100.0, 100.0)
     ax.fill_between(t, lo, hi, color="#4c78a8", alpha=0.25, linewidth=0, label="max loss band")
     ax.plot(t, est, "-", color="#1f4e79", lw=1.4, label="max loss estimate")
     if "mean_loss_pct" in rows:
@@ -122,7 +124,8 @@ def _trend_figure(path_id, rows, surveys, limit_pct):
     ax.set_ylabel("wall loss [% of nominal]")
     ax.set_xlabel("capture date (UTC)")
     ax.set_title(f"path {path_id}")
-    ax.set_ylim(bottom=min(0.0, float(np.nanmin(lo)) if np.isfinite(lo).any() else 0.0))
+    finite_lo = lo_raw[np.isfinite(lo_raw)]
+    ax.set_ylim(bottom=min(0.0, float(finite_lo.min())) if finite_lo.size else 0.0)
     ax.grid(alpha=0.3)
     _date_axis(ax)
     ax.legend(fontsize=7, loc="upper left", ncol=2)
@@ -163,9 +166,13 @@ def _scatter_figure(matched, coverage):
             continue
         lo = matched[f"est_{target}_lower"].to_numpy(float)[ok]
         hi = matched[f"est_{target}_upper"].to_numpy(float)[ok]
+        # an infinite band (tiny calibration set) is drawn to the plot edge, not to infinity
+        finite_hi = hi[np.isfinite(hi)]
+        top = max(top, float(finite_hi.max()) if finite_hi.size else 0.0, float(np.nanmax(x[ok])))
+        edge = 1.05 * max(top, float(np.nanmax(y[ok])))
+        lo, hi = np.clip(lo, -edge, edge), np.clip(hi, -edge, edge)
         ax.errorbar(x[ok], y[ok], yerr=[y[ok] - lo, hi - y[ok]], fmt=mk, color=col, ms=5, capsize=2,
                     alpha=0.85, label=f"{target} ({coverage:.0%} band)")
-        top = max(top, float(np.nanmax(hi)), float(np.nanmax(x[ok])))
     ax.plot([0, top * 1.05], [0, top * 1.05], color="grey", ls="--", lw=1, label="estimate = reading")
     ax.set_xlabel("wall loss from readings [% of nominal]")
     ax.set_ylabel("estimated wall loss [% of nominal]")

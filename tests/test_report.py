@@ -182,3 +182,24 @@ def test_scores_only_report(tmp_path):
     assert "verdict" not in parsed.keyed and len(parsed.images) == 3
     assert "limit 15 %" not in text  # legends are inside the PNG, not the HTML
     assert parsed.keyed["model:limit for exceedance [% of nominal]"] == "15.0"
+
+
+def test_figures_draw_infinite_bands_without_error():
+    # k = ceil((n+1)(1-alpha)) > n gives an infinite conformal band (Vovk et al. 2005): the trend
+    # and scatter figures must still render, with the band drawn to finite limits.
+    import pandas as pd
+
+    from models.report import _scatter_figure, _trend_figure
+
+    rows = pd.DataFrame({"captured_at": pd.to_datetime(["2025-03-01", "2025-03-08"], utc=True),
+                         "max_loss_pct": [5.0, 6.0], "max_loss_pct_lower": [-np.inf, 2.0],
+                         "max_loss_pct_upper": [np.inf, 9.0], "mean_loss_pct": [1.0, 1.2],
+                         "in_family": [True, True]})
+    fig = _trend_figure("P01", rows, None, 15.0)
+    lo, hi = fig.axes[0].get_ylim()
+    assert np.isfinite(lo) and np.isfinite(hi) and hi >= 9.0
+    matched = pd.DataFrame({"max_loss_pct": [4.0, 7.0], "est_max_loss_pct": [5.0, 6.0],
+                            "est_max_loss_pct_lower": [-np.inf, 2.0], "est_max_loss_pct_upper": [np.inf, 9.0]})
+    fig2 = _scatter_figure(matched, 0.9)
+    lo2, hi2 = fig2.axes[0].get_ylim()
+    assert np.isfinite(lo2) and np.isfinite(hi2)
