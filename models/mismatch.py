@@ -303,6 +303,7 @@ class PhysicsChecker:
         self.family = family
         self.thickness_rel_tol = thickness_rel_tol
         self.tail_quantile = tail_quantile
+        self._thermal_model = None  # features.temperature.ThermalModel, built on first use
         self.arrival_rel_tol = arrival_rel_tol
         self.a0_arrival_rel_tol = a0_arrival_rel_tol
         self.frequency_rel_tol = frequency_rel_tol
@@ -311,7 +312,7 @@ class PhysicsChecker:
         self.state: dict = {}
 
     def _thermal(self):
-        if getattr(self, "_thermal_model", None) is None:
+        if self._thermal_model is None:
             from features.temperature import ThermalModel
 
             self._thermal_model = ThermalModel(self.family)
