@@ -15,7 +15,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import numpy as np  # noqa: E402
 
-from features import fundamental_dispersion, get_material, lamb_dispersion  # noqa: E402
+from waneguide.features import fundamental_dispersion, get_material, lamb_dispersion  # noqa: E402
 
 
 def best_of(fn, repeats=5):

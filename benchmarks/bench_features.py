@@ -29,8 +29,8 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     from _feature_synth import synth_record
 
-    from features.extractor import FEATURE_GROUPS, FeatureExtractor
-    from features.family import load_family
+    from waneguide.features.extractor import FEATURE_GROUPS, FeatureExtractor
+    from waneguide.features.family import load_family
 
     fam = load_family(ROOT / "configs" / "families" / "demo_fb2.toml")
     rng = np.random.default_rng(0)

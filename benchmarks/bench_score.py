@@ -25,13 +25,13 @@ def main() -> int:
     import warnings
 
     warnings.filterwarnings("ignore")
-    from features.family import load_family
-    from features.io import write_capture
-    from models.history import History
-    from models.scoring import score_captures
-    from training.campaign import run_campaign
-    from training.forward import simulate_capture
-    from training.pipeline import TrainConfig, train_model
+    from waneguide.features.family import load_family
+    from waneguide.features.io import write_capture
+    from waneguide.operations.history import History
+    from waneguide.operations.scoring import score_captures
+    from waneguide.simulation.campaign import run_campaign
+    from waneguide.simulation.forward import simulate_capture
+    from waneguide.training.pipeline import TrainConfig, train_model
 
     fam = load_family(Path(__file__).resolve().parent.parent / "configs" / "families" / "demo_fb2.toml")
     with tempfile.TemporaryDirectory() as tmp:

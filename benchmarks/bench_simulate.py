@@ -35,7 +35,7 @@ TARGET_CAMPAIGN_S = 60.0
 
 def _throughput_task(fm, plan, seed):
     """Simulate one chunk in a worker and drop it (pure compute, no disk, no transfer)."""
-    from training.campaign import _simulate_chunk
+    from waneguide.simulation.campaign import _simulate_chunk
 
     arrays = _simulate_chunk(fm, plan, seed)
     return len(arrays["case_index"]), len(arrays["specimen_index"])
@@ -61,9 +61,9 @@ def main(argv=None) -> None:
 
     from joblib import Parallel, delayed
 
-    from features.family import load_family
-    from training.campaign import DEFAULT_CHUNK_SIZE, plan_campaign, run_campaign
-    from training.forward import ForwardModel
+    from waneguide.features.family import load_family
+    from waneguide.simulation.campaign import DEFAULT_CHUNK_SIZE, plan_campaign, run_campaign
+    from waneguide.simulation.forward import ForwardModel
 
     fam = load_family(args.family)
     t0 = time.perf_counter()

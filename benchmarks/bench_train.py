@@ -36,14 +36,14 @@ def main(argv=None) -> int:
     ap.add_argument("--cache", type=Path, default=Path(tempfile.gettempdir()) / "waneguide-bench-train")
     args = ap.parse_args(argv)
 
-    from features.extractor import FeatureExtractor, extract_feature_table
-    from features.family import load_family
-    from features.io import read_capture, write_capture
-    from features.schema import feature_columns
-    from models.bundle import TARGETS, load_bundle
-    from models.conformal import grouped_split
-    from training.campaign import load_campaign, run_campaign
-    from training.pipeline import TrainConfig, campaign_features, evaluate_bundle, fit_bundle
+    from waneguide.features.extractor import FeatureExtractor, extract_feature_table
+    from waneguide.features.family import load_family
+    from waneguide.features.io import read_capture, write_capture
+    from waneguide.features.schema import feature_columns
+    from waneguide.models.bundle import TARGETS, load_bundle
+    from waneguide.models.conformal import grouped_split
+    from waneguide.simulation.campaign import load_campaign, run_campaign
+    from waneguide.training.pipeline import TrainConfig, campaign_features, evaluate_bundle, fit_bundle
 
     fam_path = Path(__file__).resolve().parent.parent / "configs" / "families" / "demo_fb2.toml"
     fam = load_family(fam_path)
@@ -55,7 +55,7 @@ def main(argv=None) -> int:
         run_campaign(fam, args.cases, camp_dir, seed=2024, workers=2, progress=True)
         print(f"  simulated in {time.perf_counter() - t0:.1f} s")
     camp = load_campaign(camp_dir)
-    from features.schema import FEATURE_SCHEMA_VERSION
+    from waneguide.features.schema import FEATURE_SCHEMA_VERSION
 
     # the cache key carries the feature schema version: a new feature set never reuses old tables
     fpath = cache / f"features_{camp.fingerprint}_v{FEATURE_SCHEMA_VERSION}.parquet"

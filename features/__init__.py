@@ -22,7 +22,7 @@ Conventional estimate
 """
 from __future__ import annotations
 
-from .dispersion import (
+from waneguide.features.dispersion import (
     DISPERSION_COLUMNS,
     DispersionCurves,
     cutoff_frequency_thickness,
@@ -32,7 +32,7 @@ from .dispersion import (
     rayleigh_velocity,
     viktorov_rayleigh_velocity,
 )
-from .materials import (
+from waneguide.features.materials import (
     BUILTIN_MATERIALS,
     Material,
     builtin_material_names,
@@ -42,7 +42,7 @@ from .materials import (
     resolve_material,
 )
 
-from .capture import Capture
+from waneguide.features.capture import Capture
 
 # The feature-extraction names load on first use (PEP 562), so that importing
 # features.family or features.dispersion stays light (no pandas / joblib).

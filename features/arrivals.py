@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft as sfft
 
-from .signals import hilbert_envelope, parabolic_peak
+from waneguide.features.signals import hilbert_envelope, parabolic_peak
 
 __all__ = [
     "DelayEstimate",

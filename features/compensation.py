@@ -35,9 +35,9 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft as sfft
 
-from ._validation import validate_positive_scalar, validate_sample_rate_hz
-from .arrivals import threshold_crossing_index
-from .signals import parabolic_peak
+from waneguide.core.validation import validate_positive_scalar, validate_sample_rate_hz
+from waneguide.features.arrivals import threshold_crossing_index
+from waneguide.features.signals import parabolic_peak
 
 __all__ = [
     "dispersive_propagate",

@@ -26,9 +26,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .dispersion import fundamental_dispersion
-from .family import Family
-from .temperature import ThermalModel
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.family import Family
+from waneguide.features.temperature import ThermalModel
 
 __all__ = ["ConventionalInversion", "conventional_estimate", "conventional_estimate_frame", "CONVENTIONAL_COLUMNS"]
 

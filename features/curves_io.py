@@ -6,10 +6,10 @@ from pathlib import Path
 
 import numpy as np
 
-from ._validation import validate_positive_scalar
-from .atomic import atomic_path
-from .dispersion import DISPERSION_COLUMNS, DispersionCurves, lamb_dispersion
-from .materials import Material, resolve_material
+from waneguide.core.validation import validate_positive_scalar
+from waneguide.core.atomic import atomic_path
+from waneguide.features.dispersion import DISPERSION_COLUMNS, DispersionCurves, lamb_dispersion
+from waneguide.features.materials import Material, resolve_material
 
 __all__ = ["compute_dispersion_table", "write_dispersion_csv", "plot_dispersion"]
 

@@ -59,8 +59,8 @@ from typing import Iterable, Sequence
 import numpy as np
 from scipy.optimize import brentq
 
-from ._validation import validate_positive_array, validate_positive_scalar
-from .materials import Material
+from waneguide.core.validation import validate_positive_array, validate_positive_scalar
+from waneguide.features.materials import Material
 
 __all__ = [
     "DispersionCurves",

@@ -25,16 +25,16 @@ import numpy as np
 import pandas as pd
 import scipy.fft as sfft
 
-from .arrivals import envelope_peak_index, phase_delay_from_dft, threshold_crossing_index, xcorr_delay_from_spectra
-from .capture import Capture
-from .compensation import CompensationOperator, candidate_thicknesses, measure_packets
-from .dispersion import fundamental_dispersion
-from .family import Family
-from .quality import CaptureRejected, QualityReport, assess_quality, assess_quality_arrays
-from .schema import FEATURE_SCHEMA_VERSION, METADATA_COLUMNS, feature_columns
-from .signals import decimated_analytic, excitation_band_hz, mode_windows, parabolic_peak, tukey_gate
-from .temperature import ThermalModel, baseline_stretch, select_baseline
-from .thickness_gauge import BaselineThicknessGauge
+from waneguide.features.arrivals import envelope_peak_index, phase_delay_from_dft, threshold_crossing_index, xcorr_delay_from_spectra
+from waneguide.features.capture import Capture
+from waneguide.features.compensation import CompensationOperator, candidate_thicknesses, measure_packets
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.family import Family
+from waneguide.features.quality import CaptureRejected, QualityReport, assess_quality, assess_quality_arrays
+from waneguide.features.schema import FEATURE_SCHEMA_VERSION, METADATA_COLUMNS, feature_columns
+from waneguide.features.signals import decimated_analytic, excitation_band_hz, mode_windows, parabolic_peak, tukey_gate
+from waneguide.features.temperature import ThermalModel, baseline_stretch, select_baseline
+from waneguide.features.thickness_gauge import BaselineThicknessGauge
 
 __all__ = ["FeatureExtractor", "extract_feature_table", "build_feature_file", "FEATURE_GROUPS"]
 
@@ -608,10 +608,10 @@ def extract_feature_table(
 def build_feature_file(family_path, captures, baselines, out_path, *, n_jobs: int = 1,
                        on_reject: str = "raise") -> pd.DataFrame:
     """Library side of ``waneguide features``: read, extract, write Parquet atomically."""
-    from .atomic import check_output_path
-    from .family import load_family
-    from .io import read_captures
-    from .schema import write_feature_table
+    from waneguide.core.atomic import check_output_path
+    from waneguide.features.family import load_family
+    from waneguide.features.io import read_captures
+    from waneguide.features.schema import write_feature_table
 
     if isinstance(n_jobs, bool) or int(n_jobs) != n_jobs or n_jobs == 0 or n_jobs < -1:
         raise ValueError(f"n_jobs (--jobs) must be a positive integer (or -1 for all cores); got {n_jobs!r}.")

@@ -39,7 +39,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from .materials import Material, get_material, material_from_mapping
+from waneguide.features.materials import Material, get_material, material_from_mapping
 
 __all__ = [
     "Family",

@@ -37,9 +37,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .capture import Capture
-from .family import Family
-from .signals import mode_windows
+from waneguide.features.capture import Capture
+from waneguide.features.family import Family
+from waneguide.features.signals import mode_windows
 
 __all__ = ["QualityReport", "CaptureRejected", "assess_quality", "assess_quality_arrays", "FATAL_FLAGS", "WARNING_FLAGS"]
 

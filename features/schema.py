@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from .atomic import atomic_path
+from waneguide.core.atomic import atomic_path
 
 __all__ = [
     "FEATURE_SCHEMA_VERSION",

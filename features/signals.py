@@ -8,7 +8,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.fft as sfft
 
-from ._validation import validate_positive_scalar, validate_sample_rate_hz
+from waneguide.core.validation import validate_positive_scalar, validate_sample_rate_hz
 
 __all__ = [
     "WINDOWS",
@@ -270,7 +270,7 @@ _WINDOW_CACHE: dict = {}
 
 
 def _mode_windows(family, velocity_margin):
-    from .dispersion import fundamental_dispersion
+    from waneguide.features.dispersion import fundamental_dispersion
 
     mat = family.build_material()
     d0 = family.nominal_thickness_m

@@ -30,9 +30,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .dispersion import fundamental_dispersion
-from .family import Family
-from .signals import parabolic_peak
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.family import Family
+from waneguide.features.signals import parabolic_peak
 
 __all__ = [
     "ThermalModel",

@@ -27,8 +27,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .dispersion import fundamental_dispersion
-from .signals import parabolic_peak, tone_burst
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.signals import parabolic_peak, tone_burst
 
 __all__ = ["BaselineThicknessGauge"]
 

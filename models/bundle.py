@@ -65,10 +65,10 @@ TARGETS = ("max_loss_pct", "max_loss_mm", "mean_loss_pct")
 
 #: Types allowed inside ``sklearn_parts.skops`` beyond skops' own default trust.
 TRUSTED_TYPES = (
-    "models.gp.StandardisedGPRegressor",
-    "models.mismatch.MismatchDetector",
-    "models.residual.ResidualCorrector",
-    "models.residual._Const",
+    "waneguide.models.gp.StandardisedGPRegressor",
+    "waneguide.models.mismatch.MismatchDetector",
+    "waneguide.models.residual.ResidualCorrector",
+    "waneguide.models.residual._Const",
     "sklearn.gaussian_process._gpr.GaussianProcessRegressor",
     "sklearn.gaussian_process.kernels.ConstantKernel",
     "sklearn.gaussian_process.kernels.Matern",
@@ -91,7 +91,7 @@ _VERSION_RE = re.compile(r"^v(\d{3,})$")
 # small pieces
 # ---------------------------------------------------------------------------
 def _sha256(path: Path) -> str:
-    from features.atomic import file_sha256
+    from waneguide.core.atomic import file_sha256
 
     return file_sha256(path)
 
@@ -304,7 +304,7 @@ class ModelBundle:
         (conservative) probability that the maximum loss exceeds it (NaN when not given).
         Rows flagged out of family still get their numbers (``in_family`` False, reasons given).
         """
-        from .mismatch import combine_mismatch
+        from waneguide.models.mismatch import combine_mismatch
 
         if not isinstance(feature_df, pd.DataFrame):
             raise ValueError(f"predict_frame needs a pandas DataFrame of features; got {type(feature_df).__name__}")
@@ -340,8 +340,8 @@ class ModelBundle:
         models (Barber et al. 2021). With fewer than about 1/(1-coverage) cases the band is
         infinite, by the finite-sample rule.
         """
-        from .conformal import ConformalCalibrator
-        from .residual import ResidualCorrector
+        from waneguide.models.conformal import ConformalCalibrator
+        from waneguide.models.residual import ResidualCorrector
 
         if len(feature_df) != len(targets_df):
             raise ValueError(f"recalibrate: {len(feature_df)} feature rows but {len(targets_df)} target rows")
@@ -384,7 +384,7 @@ class ModelBundle:
                         created_at=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"))
         new.metrics = dict(self.metrics, recalibration=report)
         new.path = None
-        from .card import render_model_card
+        from waneguide.models.card import render_model_card
 
         new.model_card = render_model_card(new)
         return new
@@ -418,7 +418,7 @@ class ModelBundle:
         return path
 
     def _write(self, d: Path, sio) -> None:
-        from .card import render_model_card
+        from waneguide.models.card import render_model_card
 
         arrays: dict[str, np.ndarray] = {}
         tmeta = {}
@@ -509,11 +509,11 @@ def load_bundle(path: str | os.PathLike) -> ModelBundle:
     """
     import skops.io as sio
 
-    from features.family import load_family
+    from waneguide.features.family import load_family
 
-    from .conformal import ConformalCalibrator
-    from .gbm import MonotoneGBMRegressor
-    from .mismatch import PhysicsChecker
+    from waneguide.models.conformal import ConformalCalibrator
+    from waneguide.models.gbm import MonotoneGBMRegressor
+    from waneguide.models.mismatch import PhysicsChecker
 
     p = Path(path)
     if not p.exists():

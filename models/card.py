@@ -32,7 +32,7 @@ def _fmt(v, digits=3):
 
 def render_model_card(bundle) -> str:
     """Markdown text for ``bundle`` (a :class:`models.bundle.ModelBundle`)."""
-    from waneguide_cli.main import CAUTION
+    from waneguide.core.caution import CAUTION
 
     fam = bundle.family
     m = bundle.metrics or {}

@@ -249,7 +249,7 @@ class NormalisedConformalRegressor(_ConformalBase):
         self.random_state = random_state
 
     def _defaults(self):
-        from .gbm import MonotoneGBMRegressor
+        from waneguide.models.gbm import MonotoneGBMRegressor
 
         est = MonotoneGBMRegressor(random_state=self.random_state) if self.estimator is None else self.estimator
         sc = (MonotoneGBMRegressor(n_estimators=100, num_leaves=15, monotone_rules=(), random_state=self.random_state)
@@ -328,7 +328,7 @@ class CQRRegressor(_ConformalBase):
         self.random_state = random_state
 
     def fit(self, X, y, groups=None):
-        from .gbm import QuantileGBMRegressor
+        from waneguide.models.gbm import QuantileGBMRegressor
 
         conformal_rank(1, self.coverage)
         X, y = validate_data(self, X, y, ensure_all_finite="allow-nan", y_numeric=True, dtype=np.float64,

@@ -167,7 +167,7 @@ class MismatchDetector(BaseEstimator):
         Z = self._standardise(X)
         n = len(Z)
         if groups is not None:
-            from .conformal import grouped_split
+            from waneguide.models.conformal import grouped_split
 
             is_cal = grouped_split(np.asarray(groups), self.calibration_fraction, rng)
             cal, fit = np.flatnonzero(is_cal), rng.permutation(np.flatnonzero(~is_cal))
@@ -313,7 +313,7 @@ class PhysicsChecker:
 
     def _thermal(self):
         if self._thermal_model is None:
-            from features.temperature import ThermalModel
+            from waneguide.features.temperature import ThermalModel
 
             self._thermal_model = ThermalModel(self.family)
         return self._thermal_model

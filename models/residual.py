@@ -21,7 +21,7 @@ import numpy as np
 from sklearn.base import BaseEstimator, RegressorMixin, clone
 from sklearn.utils.validation import check_is_fitted, validate_data
 
-from .blend import grouped_folds
+from waneguide.models.blend import grouped_folds
 
 __all__ = ["ResidualCorrector", "CORRECTION_CANDIDATES"]
 
@@ -80,7 +80,7 @@ class ResidualCorrector(RegressorMixin, BaseEstimator):
         if kind == "bias":
             return _Const()
         if self.estimator is None:
-            from .gp import StandardisedGPRegressor
+            from waneguide.models.gp import StandardisedGPRegressor
 
             return StandardisedGPRegressor(max_points=2000, random_state=self.random_state)
         return clone(self.estimator)

@@ -9,10 +9,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from features.capture import Capture
-from features.compensation import dispersive_propagate
-from features.dispersion import fundamental_dispersion
-from features.signals import tone_burst
+from waneguide.features.capture import Capture
+from waneguide.features.compensation import dispersive_propagate
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.signals import tone_burst
 
 F_GRID = np.linspace(5e3, 800e3, 800)
 

@@ -22,13 +22,13 @@ def repo_root() -> Path:
 
 @pytest.fixture(scope="session")
 def family_fb2():
-    from features.family import load_family
+    from waneguide.features.family import load_family
 
     return load_family(FAMILY_FB2)
 
 
 @pytest.fixture(scope="session")
 def family_st3():
-    from features.family import load_family
+    from waneguide.features.family import load_family
 
     return load_family(FAMILY_ST3)

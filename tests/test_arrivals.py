@@ -5,12 +5,12 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from features.arrivals import (
+from waneguide.features.arrivals import (
     envelope_arrivals,
     phase_delay,
     xcorr_delay,
 )
-from features.signals import hilbert_envelope, tone_burst
+from waneguide.features.signals import hilbert_envelope, tone_burst
 
 FS = 10e6
 F0 = 150e3

@@ -13,7 +13,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from models.audit import (
+from waneguide.operations.audit import (
     AuditSettings,
     audit_frames,
     calibration_curve,
@@ -23,7 +23,7 @@ from models.audit import (
     residual_summary,
     standardised_residuals,
 )
-from models.readings import read_readings
+from waneguide.operations.readings import read_readings
 
 NOMINAL_MM = 2.0
 PATH_MM = 300.0
@@ -257,8 +257,8 @@ def test_infinite_band_counts_as_matched_and_covering():
 
 def test_audit_refuses_a_missing_history_file_without_creating_it(tmp_path):
     # Auditing only reads the history: a mistyped SQLite path must be refused, not created empty.
-    from models.audit import run_audit
-    from models.history import sqlite_file
+    from waneguide.operations.audit import run_audit
+    from waneguide.operations.history import sqlite_file
 
     assert sqlite_file("sqlite:////tmp/x/h.db").as_posix() == "/tmp/x/h.db"
     assert sqlite_file("sqlite:///:memory:") is None

@@ -13,8 +13,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from models.bundle import TARGETS, load_bundle
-from training.pipeline import TrainConfig, fit_bundle
+from waneguide.models.bundle import TARGETS, load_bundle
+from waneguide.training.pipeline import TrainConfig, fit_bundle
 
 CONTRACT_COLUMNS = [
     "max_loss_pct", "max_loss_pct_lower", "max_loss_pct_upper", "max_loss_mm", "max_loss_mm_lower",

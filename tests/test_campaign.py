@@ -10,11 +10,11 @@ import pandas as pd
 import pytest
 from scipy.stats import qmc
 
-import training.campaign as campaign_mod
-from features.io import read_capture
-from training.campaign import load_campaign, plan_campaign, run_campaign
-from training.export import export_campaign_captures
-from training.profiles import TRUTH_COLUMNS
+import waneguide.simulation.campaign as campaign_mod
+from waneguide.features.io import read_capture
+from waneguide.simulation.campaign import load_campaign, plan_campaign, run_campaign
+from waneguide.simulation.export import export_campaign_captures
+from waneguide.simulation.profiles import TRUTH_COLUMNS
 
 N_CASES = 36
 CHUNK = 8  # 5 chunks, the last one short
@@ -235,7 +235,7 @@ def test_cli_simulate_writes_and_summarises(tmp_path, family_fb2):
     from contextlib import redirect_stderr, redirect_stdout
 
     from tests.conftest import FAMILY_FB2
-    from waneguide_cli.main import main
+    from waneguide.cli.main import main
 
     def cli(*argv):
         out, err = io.StringIO(), io.StringIO()

@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 
 from tests.conftest import FAMILY_FB2
-from waneguide_cli.main import main
+from waneguide.cli.main import main
 
 
 def run_cli(*argv):
@@ -33,8 +33,8 @@ def snapshot(folder: Path) -> dict:
 @pytest.fixture(scope="module")
 def work(tmp_path_factory):
     """A tiny campaign, a few exported captures and a set of bad inputs (about 2 s)."""
-    from training.campaign import run_campaign
-    from training.export import export_campaign_captures
+    from waneguide.simulation.campaign import run_campaign
+    from waneguide.simulation.export import export_campaign_captures
 
     w = tmp_path_factory.mktemp("badinput")
     run_campaign(FAMILY_FB2, 24, w / "camp", seed=3, workers=1, progress=False)
@@ -160,7 +160,7 @@ def test_capture_without_sample_rate_header_pairs_with_its_baseline(work, tmp_pa
     assert rc == 0, err
     import pandas as pd
 
-    from features.io import read_capture
+    from waneguide.features.io import read_capture
 
     no_rate = read_capture(work["w"] / "no_rate.csv")
     with_rate = read_capture(work["first"])
@@ -171,7 +171,7 @@ def test_capture_without_sample_rate_header_pairs_with_its_baseline(work, tmp_pa
 
 def test_out_folder_check_keeps_an_interrupted_campaign_resumable(work, tmp_path):
     """check_output_dir refuses files only: an existing campaign folder is still accepted (resume)."""
-    from features.atomic import check_output_dir, check_output_path
+    from waneguide.core.atomic import check_output_dir, check_output_path
 
     assert check_output_dir(work["w"] / "camp") == work["w"] / "camp"
     assert check_output_path(tmp_path / "new" / "deeper" / "x.csv") == tmp_path / "new" / "deeper" / "x.csv"
@@ -184,7 +184,7 @@ def test_out_folder_check_keeps_an_interrupted_campaign_resumable(work, tmp_path
 def test_readings_date_must_be_iso_8601(tmp_path, text):
     """pd.Timestamp read '2nd of March' as year 1 (then 'nearest capture 738,885 days away') and
     03/02/2024 as March 2 (US order); the README promises ISO 8601 (ISO 8601-1:2019)."""
-    from models.readings import read_readings
+    from waneguide.operations.readings import read_readings
 
     f = tmp_path / "r_date.csv"
     f.write_text(f"path_id,date,position_mm,remaining_thickness_mm,method\nP01,{text},100,1.6,UT\n")

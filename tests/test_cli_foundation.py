@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from waneguide_cli.main import main
+from waneguide.cli.main import main
 
 
 def run_cli(*argv):

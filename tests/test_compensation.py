@@ -8,10 +8,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from features.compensation import dispersive_propagate, measure_packets, wilcox_compensate
-from features.dispersion import fundamental_dispersion
-from features.extractor import FeatureExtractor
-from features.signals import hilbert_envelope, tone_burst
+from waneguide.features.compensation import dispersive_propagate, measure_packets, wilcox_compensate
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.extractor import FeatureExtractor
+from waneguide.features.signals import hilbert_envelope, tone_burst
 
 from _feature_synth import F_GRID, synth_record
 

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from models.conformal import (
+from waneguide.models.conformal import (
     ConformalCalibrator,
     CQRRegressor,
     NormalisedConformalRegressor,
@@ -21,7 +21,7 @@ from models.conformal import (
     conformal_rank,
     coverage_by_group,
 )
-from models.gbm import MonotoneGBMRegressor
+from waneguide.models.gbm import MonotoneGBMRegressor
 
 
 def test_rank_and_infinite_band():

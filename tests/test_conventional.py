@@ -4,9 +4,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from features.conventional import ConventionalInversion, conventional_estimate, conventional_estimate_frame
-from features.dispersion import fundamental_dispersion
-from features.extractor import extract_feature_table
+from waneguide.features.conventional import ConventionalInversion, conventional_estimate, conventional_estimate_frame
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.extractor import extract_feature_table
 
 from _feature_synth import synth_capture
 

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from waneguide_cli.main import CAUTION
+from waneguide.core.caution import CAUTION
 
 pytestmark = pytest.mark.slow
 
@@ -20,7 +20,7 @@ def demo(tmp_path_factory):
     import contextlib
     import io
 
-    from waneguide_cli.demo import run_demo, scenario
+    from waneguide.cli.demo import run_demo, scenario
 
     out = tmp_path_factory.mktemp("demo")
     buf = io.StringIO()
@@ -44,7 +44,7 @@ def test_outputs_written_and_caution_printed(demo):
 
 
 def test_every_capture_scored_once(demo):
-    from models.history import History
+    from waneguide.operations.history import History
 
     sc = demo["scenario"]
     with History(f"sqlite:///{demo['paths']['history_db']}") as h:
@@ -74,8 +74,8 @@ def test_growing_patch_trends_upward_and_sound_paths_stay_low(demo):
 
 
 def test_readings_matched_and_audit_recorded(demo):
-    from models.history import History
-    from models.readings import read_readings
+    from waneguide.operations.history import History
+    from waneguide.operations.readings import read_readings
 
     sc = demo["scenario"]
     r = read_readings(demo["paths"]["readings_csv"])

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from features import (
+from waneguide.features import (
     Material,
     cutoff_frequency_thickness,
     fundamental_dispersion,
@@ -27,7 +27,7 @@ from features import (
     rayleigh_velocity,
     viktorov_rayleigh_velocity,
 )
-from features import dispersion as disp
+from waneguide.features import dispersion as disp
 
 AL = get_material("al-6061-t6")
 

@@ -17,7 +17,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from models.drift import (
+from waneguide.operations.drift import (
     PageHinkley,
     cusum_arl_siegmund,
     feature_drift,

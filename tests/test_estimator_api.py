@@ -9,12 +9,12 @@ from __future__ import annotations
 
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from models.blend import GroupedCVBlend
-from models.conformal import CQRRegressor, NormalisedConformalRegressor
-from models.gbm import MonotoneGBMRegressor, QuantileGBMRegressor
-from models.gp import StandardisedGPRegressor
-from models.mismatch import MismatchDetector
-from models.residual import ResidualCorrector
+from waneguide.models.blend import GroupedCVBlend
+from waneguide.models.conformal import CQRRegressor, NormalisedConformalRegressor
+from waneguide.models.gbm import MonotoneGBMRegressor, QuantileGBMRegressor
+from waneguide.models.gp import StandardisedGPRegressor
+from waneguide.models.mismatch import MismatchDetector
+from waneguide.models.residual import ResidualCorrector
 
 ESTIMATORS = [
     MonotoneGBMRegressor(n_estimators=20, min_child_samples=2, random_state=0),

@@ -7,10 +7,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from features.dispersion import fundamental_dispersion
-from features.extractor import FeatureExtractor, extract_feature_table
-from features.io import write_capture
-from features.schema import (
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.extractor import FeatureExtractor, extract_feature_table
+from waneguide.features.io import write_capture
+from waneguide.features.schema import (
     FEATURE_SCHEMA_VERSION,
     METADATA_COLUMNS,
     describe_features,
@@ -131,7 +131,7 @@ def test_schema_documents_every_column_and_parquet_keeps_version(pair, tmp_path)
 
 
 def test_cli_features(pair, tmp_path, repo_root):
-    from waneguide_cli.main import main
+    from waneguide.cli.main import main
 
     fam, base, caps = pair
     (tmp_path / "caps").mkdir()

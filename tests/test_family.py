@@ -6,7 +6,7 @@ import tomllib
 
 import pytest
 
-from features.family import Family, family_from_mapping, load_family
+from waneguide.features.family import Family, family_from_mapping, load_family
 from tests.conftest import FAMILY_FB2, FAMILY_ST3
 
 

@@ -13,10 +13,10 @@ import numpy as np
 import pytest
 from scipy.signal import hilbert
 
-from features.capture import Capture
-from features.dispersion import fundamental_dispersion
-from features.family import family_from_mapping
-from training.forward import ForwardModel, simulate_capture, tone_burst
+from waneguide.features.capture import Capture
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.family import family_from_mapping
+from waneguide.simulation.forward import ForwardModel, simulate_capture, tone_burst
 
 # everything that is not propagation switched off
 OFF = dict(snr_db=None, jitter_s=0.0, attenuation_db_per_m=0.0, echo_reflection=0.0, crosstalk_db=None,

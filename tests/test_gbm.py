@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from models.gbm import (
+from waneguide.models.gbm import (
     MonotoneGBMRegressor,
     QuantileGBMRegressor,
     monotonicity_audit,

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from sklearn.gaussian_process.kernels import Matern
 
-from models.gp import StandardisedGPRegressor, farthest_point_subset
+from waneguide.models.gp import StandardisedGPRegressor, farthest_point_subset
 
 
 def _draw(n, rng, length_scales=(0.6, 2.0), noise=0.1):
@@ -25,7 +25,7 @@ def _draw(n, rng, length_scales=(0.6, 2.0), noise=0.1):
 def test_recovers_noise_and_length_scales(caplog):
     rng = np.random.default_rng(0)
     X, y = _draw(500, rng)
-    with caplog.at_level(logging.WARNING, logger="models.gp"):
+    with caplog.at_level(logging.WARNING, logger="waneguide.models.gp"):
         # upper bound 30 standardised units (~26 in x): far beyond the data's 3-unit span, so an
         # irrelevant feature must run into it
         gp = StandardisedGPRegressor(max_points=1000, length_scale_bounds=(1e-2, 30.0), random_state=0).fit(

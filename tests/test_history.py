@@ -18,8 +18,8 @@ import time
 import numpy as np
 import pytest
 
-from features.capture import Capture
-from models.history import History, capture_content_hash, resolve_db_url
+from waneguide.features.capture import Capture
+from waneguide.operations.history import History, capture_content_hash, resolve_db_url
 
 
 def _row(h, v="v1", **kw):
@@ -90,7 +90,7 @@ def test_env_var_sets_default(monkeypatch, tmp_path):
 _WRITER = textwrap.dedent(
     """
     import sys, time
-    from models.history import History
+    from waneguide.operations.history import History
     url, start, n, batch, pause = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[4]), float(sys.argv[5])
     h = History(url)
     done = h.scored_hashes("v1")

@@ -8,8 +8,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from features.capture import Capture
-from features.io import (
+from waneguide.features.capture import Capture
+from waneguide.features.io import (
     CorruptFileError,
     EmptyDataError,
     InvalidFieldError,

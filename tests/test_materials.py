@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from features import BUILTIN_MATERIALS, Material, get_material, load_material, resolve_material
+from waneguide.features import BUILTIN_MATERIALS, Material, get_material, load_material, resolve_material
 
 
 def test_velocity_pair_round_trips_through_moduli():

@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 from sklearn.metrics import roc_auc_score
 
-from models.mismatch import MismatchDetector, PhysicsChecker, _forest_score, combine_mismatch
+from waneguide.models.mismatch import MismatchDetector, PhysicsChecker, _forest_score, combine_mismatch
 
 
 @pytest.fixture(scope="module")
@@ -100,7 +100,7 @@ def test_physics_a0_arrival_flags_thickness_and_compensates_temperature(family_f
     # A0 is already bending over towards its group-velocity maximum, and the Rayleigh-Lamb delay
     # moves by about 3.5 % -- below the Kirchhoff bound, above the checker's 2 % floor. Expected values come from the Rayleigh-Lamb engine at each baseline's own
     # temperature (expansion and dE/dT of the material model), so a hot in-family baseline passes.
-    from features.temperature import ThermalModel
+    from waneguide.features.temperature import ThermalModel
 
     thick = family_fb2.model_copy(update={"section": family_fb2.section.model_copy(
         update={"flange_thickness_mm": family_fb2.section.flange_thickness_mm * 1.15})})

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from training.profiles import (
+from waneguide.simulation.profiles import (
     EXTENT_THRESHOLD,
     ThinningProfile,
     flat_patch_profile,

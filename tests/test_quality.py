@@ -6,8 +6,8 @@ import dataclasses
 import numpy as np
 import pytest
 
-from features.extractor import FeatureExtractor
-from features.quality import FATAL_FLAGS, CaptureRejected, assess_quality
+from waneguide.features.extractor import FeatureExtractor
+from waneguide.features.quality import FATAL_FLAGS, CaptureRejected, assess_quality
 
 from _feature_synth import synth_capture
 

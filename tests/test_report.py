@@ -16,10 +16,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from models.audit import audit_frames
-from models.history import History
-from models.readings import read_readings
-from models.report import write_report
+from waneguide.operations.audit import audit_frames
+from waneguide.operations.history import History
+from waneguide.operations.readings import read_readings
+from waneguide.operations.report import write_report
 
 MODEL = {"model_version": "test-v1", "family_name": "demo-fb2", "family_fingerprint": "0123456789abcdef",
          "family_invented": True, "coverage_nominal": 0.9, "calibration_source": "simulated",
@@ -159,7 +159,7 @@ def test_report_numbers_match_the_database(tmp_path):
     assert int(k["n_matched"]) == 6 and int(k["n_surveys"]) == 7
     # family identity and the caution are on the page
     assert k["model:family fingerprint"] == MODEL["family_fingerprint"]
-    from waneguide_cli.main import CAUTION
+    from waneguide.core.caution import CAUTION
 
     assert k["caution"] == CAUTION
 
@@ -189,7 +189,7 @@ def test_figures_draw_infinite_bands_without_error():
     # and scatter figures must still render, with the band drawn to finite limits.
     import pandas as pd
 
-    from models.report import _scatter_figure, _trend_figure
+    from waneguide.operations.report import _scatter_figure, _trend_figure
 
     rows = pd.DataFrame({"captured_at": pd.to_datetime(["2025-03-01", "2025-03-08"], utc=True),
                          "max_loss_pct": [5.0, 6.0], "max_loss_pct_lower": [-np.inf, 2.0],

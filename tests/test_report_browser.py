@@ -194,7 +194,7 @@ def test_harness_catches_console_errors_and_external_requests(browser, tmp_path)
 def test_report_in_headless_chromium(browser, tmp_path):
     from test_report import build_example  # tests/ is on sys.path under pytest's default import mode
 
-    from models.history import History
+    from waneguide.operations.history import History
 
     ex = build_example(tmp_path)
     browser.load(ex["report"].resolve().as_uri())
@@ -223,6 +223,6 @@ def test_report_in_headless_chromium(browser, tmp_path):
     for pid, row in last.iterrows():
         assert float(shown[f"latest:{pid}:max_loss_pct"]) == pytest.approx(row["max_loss_pct"], abs=0.005)
     assert shown["verdict"] == ex["audit"].verdict
-    from waneguide_cli.main import CAUTION
+    from waneguide.core.caution import CAUTION
 
     assert shown["caution"] == CAUTION

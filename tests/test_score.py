@@ -22,9 +22,10 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from models.history import History
-from models.scoring import SCORE_OUTPUT_COLUMNS, score_captures
-from waneguide_cli.main import CAUTION, main
+from waneguide.operations.history import History
+from waneguide.operations.scoring import SCORE_OUTPUT_COLUMNS, score_captures
+from waneguide.cli.main import main
+from waneguide.core.caution import CAUTION
 
 DEPTHS = (0.0, 0.05, 0.10, 0.15, 0.20, 0.25)
 
@@ -38,8 +39,8 @@ def run_cli(*argv):
 
 def make_bundle(family, work: Path, *, n_cases: int = 400) -> Path:
     """Train a small bundle on a simulated campaign with the project's own pipeline (no MLflow)."""
-    from training.campaign import run_campaign
-    from training.pipeline import TrainConfig, train_model
+    from waneguide.simulation.campaign import run_campaign
+    from waneguide.training.pipeline import TrainConfig, train_model
 
     camp = work / "campaign"
     run_campaign(family, n_cases, camp, seed=1, workers=1, progress=False)
@@ -50,8 +51,8 @@ def make_bundle(family, work: Path, *, n_cases: int = 400) -> Path:
 
 def make_captures(family, folder: Path, *, seed: int = 7, n_repeat: int = 1) -> dict:
     """Baselines and captures of two paths; P02 carries a deepening pit. Returns truth per file."""
-    from features.io import write_capture
-    from training.forward import simulate_capture
+    from waneguide.features.io import write_capture
+    from waneguide.simulation.forward import simulate_capture
 
     rng = np.random.default_rng(seed)
     (folder / "baselines").mkdir(parents=True, exist_ok=True)
@@ -150,7 +151,7 @@ def test_dask_local_scheduler_gives_the_serial_numbers(setup, tmp_path):
 def _rewrite(src: Path, dst: Path, **changes):
     from dataclasses import replace
 
-    from features.io import read_capture, write_capture
+    from waneguide.features.io import read_capture, write_capture
 
     cap = read_capture(src)
     extra = dict(cap.extra or {})
@@ -201,7 +202,7 @@ def test_refusals_are_clear(setup, tmp_path, family_st3):
 def test_quality_rejected_capture_is_recorded_not_estimated(setup, tmp_path):
     from dataclasses import replace
 
-    from features.io import read_capture, write_capture
+    from waneguide.features.io import read_capture, write_capture
 
     caps = tmp_path / "q"
     shutil.copytree(setup["caps"], caps)
@@ -229,7 +230,7 @@ def test_sigkill_during_cli_scoring_then_resume(setup, tmp_path, family_fb2):
     n = len(list(caps.glob("*.npz")))
     db_path = tmp_path / "kill.db"
     db = f"sqlite:///{db_path}"
-    cmd = [sys.executable, "-m", "waneguide_cli", "score", "--model", str(setup["bundle"]), "--captures", str(caps),
+    cmd = [sys.executable, "-m", "waneguide", "score", "--model", str(setup["bundle"]), "--captures", str(caps),
            "--db", db, "--chunk-size", "1", "--no-progress"]
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=_env())
     hist = History(db)
@@ -277,7 +278,7 @@ def _readings_for(truth_by_file: dict, scores: pd.DataFrame, family, path: Path)
 def test_audit_cli_with_recalibration_registers_a_challenger(setup, tmp_path, family_fb2):
     import hashlib
 
-    from models.registry import resolve_model
+    from waneguide.operations.registry import resolve_model
 
     db = f"sqlite:///{tmp_path / 'h.db'}"
     scores = score_captures(setup["bundle"], setup["caps"], db_url=db, limit_pct=15)
@@ -301,7 +302,7 @@ def test_audit_cli_with_recalibration_registers_a_challenger(setup, tmp_path, fa
     assert after == before                          # nothing overwritten
     challenger = resolve_model("demo-fb2@challenger", tracking_uri=uri)
     assert Path(challenger).resolve() == new_dirs[0].resolve()
-    from models.bundle import load_bundle
+    from waneguide.models.bundle import load_bundle
 
     nb = load_bundle(new_dirs[0])
     assert nb.calibration_source == "measured" and nb.meta["parent_version"] == "v001"

@@ -4,9 +4,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from features.extractor import FeatureExtractor
-from features.signals import mode_windows
-from features.temperature import (
+from waneguide.features.extractor import FeatureExtractor
+from waneguide.features.signals import mode_windows
+from waneguide.features.temperature import (
     ThermalModel,
     baseline_stretch,
     s0_low_frequency_coefficient_per_k,

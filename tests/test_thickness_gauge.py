@@ -13,12 +13,12 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from features.compensation import dispersive_propagate
-from features.dispersion import fundamental_dispersion
-from features.extractor import FeatureExtractor
-from features.thickness_gauge import _disc_response
-from features.signals import tone_burst
-from models.mismatch import PhysicsChecker
+from waneguide.features.compensation import dispersive_propagate
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.extractor import FeatureExtractor
+from waneguide.features.thickness_gauge import _disc_response
+from waneguide.features.signals import tone_burst
+from waneguide.models.mismatch import PhysicsChecker
 
 
 def _baseline(family, fraction, temperature_c, *, s0_echo=0.0):

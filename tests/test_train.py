@@ -17,8 +17,8 @@ pytestmark = pytest.mark.slow
 
 @pytest.fixture(scope="module")
 def trained(tmp_path_factory, family_fb2):
-    from training.campaign import run_campaign
-    from training.pipeline import TrainConfig, train_model
+    from waneguide.simulation.campaign import run_campaign
+    from waneguide.training.pipeline import TrainConfig, train_model
 
     root = tmp_path_factory.mktemp("train")
     run_campaign(family_fb2, 500, root / "campaign", seed=11, progress=False)
@@ -29,7 +29,7 @@ def trained(tmp_path_factory, family_fb2):
 
 
 def test_pipeline_metrics_and_bundle(trained):
-    from models.bundle import load_bundle
+    from waneguide.models.bundle import load_bundle
 
     res, root = trained
     m = res.metrics
@@ -62,7 +62,7 @@ def test_mismatch_auroc_flange_thickness(trained):
 def test_run_tracked_and_registered(trained):
     from mlflow.tracking import MlflowClient
 
-    from models.registry import resolve_model
+    from waneguide.operations.registry import resolve_model
 
     res, root = trained
     uri = f"sqlite:///{root}/mlflow.db"
@@ -75,9 +75,10 @@ def test_run_tracked_and_registered(trained):
 
 def test_measured_recalibration_and_cli(trained, tmp_path, family_fb2, capsys):
     """Measured CSV: captures written by the forward model with a known flat patch."""
-    from features.io import write_capture
-    from training.forward import simulate_capture
-    from waneguide_cli.main import CAUTION, main
+    from waneguide.features.io import write_capture
+    from waneguide.simulation.forward import simulate_capture
+    from waneguide.cli.main import main
+    from waneguide.core.caution import CAUTION
 
     res, root = trained
     rng = np.random.default_rng(5)
@@ -113,7 +114,7 @@ def test_measured_recalibration_and_cli(trained, tmp_path, family_fb2, capsys):
 
 
 def test_cli_bad_campaign(tmp_path, capsys):
-    from waneguide_cli.main import main
+    from waneguide.cli.main import main
 
     rc = main(["train", "--family", str(FAMILY_FB2), "--campaign", str(tmp_path / "nope"), "--out",
                str(tmp_path / "m"), "--no-tracking"])

@@ -1,45 +1,7 @@
-"""waneguide.training: simulated campaigns and model fitting.
+"""waneguide.training: the training pipeline.
 
-Thinning profiles (:mod:`training.profiles`)
-    :class:`ThinningProfile` (thickness along the path plus ground truth),
-    generators :func:`flat_patch_profile`, :func:`pit_profile`,
-    :func:`rough_profile`, :func:`multi_patch_profile`, :func:`pristine_profile`.
-Forward model (:mod:`training.forward`)
-    :class:`ForwardModel` (S0/A0 modal synthesis on a precomputed thickness
-    grid, every approximation listed in its module docstring),
-    :func:`simulate_capture` (one capture of an explicit profile).
-Campaigns (:mod:`training.campaign`)
-    :func:`plan_campaign`, :func:`run_campaign` (joblib or Dask, chunked,
-    atomic, resumable), :func:`load_campaign` -> :class:`Campaign`.
-Export (:mod:`training.export`)
-    :func:`export_campaign_captures` (cases and baselines as capture files).
-
-Names are imported lazily, so ``import training`` stays cheap.
+:func:`~waneguide.training.pipeline.train_model` turns a simulated campaign (plus optional
+measured cases) into a new model bundle version: features, fit, calibration, evaluation and the
+mismatch shift study. Logging the run and registering the bundle in MLflow is the operations
+layer's job (:func:`waneguide.operations.train.train_and_register`).
 """
-from __future__ import annotations
-
-import importlib
-
-_EXPORTS = {
-    "ThinningProfile": "profiles",
-    "flat_patch_profile": "profiles",
-    "pit_profile": "profiles",
-    "rough_profile": "profiles",
-    "multi_patch_profile": "profiles",
-    "pristine_profile": "profiles",
-    "ForwardModel": "forward",
-    "simulate_capture": "forward",
-    "Campaign": "campaign",
-    "plan_campaign": "campaign",
-    "run_campaign": "campaign",
-    "load_campaign": "campaign",
-    "export_campaign_captures": "export",
-}
-
-__all__ = sorted(_EXPORTS)
-
-
-def __getattr__(name: str):
-    if name in _EXPORTS:
-        return getattr(importlib.import_module(f"{__name__}.{_EXPORTS[name]}"), name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

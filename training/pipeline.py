@@ -71,7 +71,7 @@ class TrainResult:
 
 def default_feature_columns(df: pd.DataFrame, targets: Sequence[str] = ()) -> list[str]:
     """Numeric columns of ``df`` that are neither metadata nor targets."""
-    from models.bundle import TARGETS
+    from waneguide.models.bundle import TARGETS
 
     skip = set(METADATA_COLUMNS) | set(targets) | set(TARGETS)
     return [c for c in df.columns if c not in skip and pd.api.types.is_numeric_dtype(df[c])
@@ -104,13 +104,13 @@ def fit_bundle(family, features: pd.DataFrame, targets: pd.DataFrame, groups, *,
     """
     from tqdm.auto import tqdm
 
-    from models.blend import blend_weights, grouped_folds
-    from models.bundle import TARGETS, ModelBundle, TargetModel, TrainingDomain
-    from models.conformal import ConformalCalibrator, conformal_rank, grouped_split
-    from models.gbm import DEFAULT_MONOTONE_RULES, MonotoneGBMRegressor, monotonicity_audit, \
+    from waneguide.models.blend import blend_weights, grouped_folds
+    from waneguide.models.bundle import TARGETS, ModelBundle, TargetModel, TrainingDomain
+    from waneguide.models.conformal import ConformalCalibrator, conformal_rank, grouped_split
+    from waneguide.models.gbm import DEFAULT_MONOTONE_RULES, MonotoneGBMRegressor, monotonicity_audit, \
         resolve_monotone_constraints
-    from models.gp import StandardisedGPRegressor, farthest_point_subset
-    from models.mismatch import MismatchDetector, PhysicsChecker
+    from waneguide.models.gp import StandardisedGPRegressor, farthest_point_subset
+    from waneguide.models.mismatch import MismatchDetector, PhysicsChecker
 
     cfg = config or TrainConfig()
     conformal_rank(1, cfg.coverage)
@@ -225,7 +225,7 @@ def fit_bundle(family, features: pd.DataFrame, targets: pd.DataFrame, groups, *,
 
 
 def _plain(obj):
-    from models.bundle import _jsonable
+    from waneguide.models.bundle import _jsonable
 
     if isinstance(obj, np.ndarray):
         return obj.tolist()
@@ -243,7 +243,7 @@ def evaluate_bundle(bundle, features: pd.DataFrame, targets: pd.DataFrame, *, gr
     ``group_labels``: mapping name -> array of labels (e.g. thickness band, temperature band).
     ``relative_width`` is the mean band width over the target's observed range.
     """
-    from models.conformal import coverage_by_group
+    from waneguide.models.conformal import coverage_by_group
 
     pred = bundle.predict_frame(features)
     out: dict[str, Any] = {}
@@ -283,7 +283,7 @@ DEFAULT_SHIFTS = (
 
 
 def _load_family(family):
-    from features.family import Family, load_family
+    from waneguide.features.family import Family, load_family
 
     if isinstance(family, Family):
         return family, None
@@ -293,7 +293,7 @@ def _load_family(family):
 
 def shifted_family(family, what: str, factor: float | None):
     """A copy of ``family`` with its flange thickness, path length or alloy changed (mismatch study)."""
-    from features.family import family_from_mapping
+    from waneguide.features.family import family_from_mapping
 
     data = family.model_dump(mode="json", exclude_none=True)
     data["family"]["name"] = f"{family.name}-shifted"
@@ -313,7 +313,7 @@ def campaign_features(family, campaign, *, progress: bool = True, n_jobs: int = 
     """Feature table of every case of ``campaign`` (extractor array path, chunk by chunk)."""
     from tqdm.auto import tqdm
 
-    from features.extractor import FeatureExtractor
+    from waneguide.features.extractor import FeatureExtractor
 
     ex = FeatureExtractor(family)
     parts = []
@@ -328,8 +328,8 @@ def campaign_features(family, campaign, *, progress: bool = True, n_jobs: int = 
 
 
 def _cached_features(family, campaign, cache_dir: Path, *, progress: bool, n_jobs: int) -> pd.DataFrame:
-    from features.atomic import atomic_path
-    from features.schema import FEATURE_SCHEMA_VERSION
+    from waneguide.core.atomic import atomic_path
+    from waneguide.features.schema import FEATURE_SCHEMA_VERSION
 
     f = cache_dir / f"features_{campaign.fingerprint}_{family.fingerprint}_v{FEATURE_SCHEMA_VERSION}.parquet"
     if f.is_file():
@@ -350,9 +350,9 @@ def read_measured(csv_path, family) -> tuple[pd.DataFrame, pd.DataFrame, np.ndar
     ``baseline`` (baseline capture per row). Without ``baseline``, the rows of a path whose
     targets are all zero serve as that path's baselines (and are not used as cases).
     """
-    from features.extractor import FeatureExtractor
-    from features.io import read_capture
-    from models.bundle import TARGETS
+    from waneguide.features.extractor import FeatureExtractor
+    from waneguide.features.io import read_capture
+    from waneguide.models.bundle import TARGETS
 
     csv_path = Path(csv_path)
     if not csv_path.is_file():
@@ -419,7 +419,7 @@ def _auroc(p_in, p_out) -> float:
 def mismatch_study(bundle, family, p_in_family, *, shifts=DEFAULT_SHIFTS, n_cases: int = 120, seed: int = 0,
                    work_dir: Path, progress: bool = False) -> dict:
     """AUROC and flag rate of the detector on small campaigns simulated with shifted geometry."""
-    from training.campaign import load_campaign, run_campaign
+    from waneguide.simulation.campaign import load_campaign, run_campaign
 
     out = {}
     for name, what, factor in shifts:
@@ -454,16 +454,16 @@ def train_model(family, campaign_dir, out_dir, *, measured_csv=None, tracking_ur
     track : False skips MLflow entirely
     shift_study : simulate small shifted-geometry campaigns to measure the mismatch AUROC
     """
-    from features.conventional import conventional_estimate_frame
-    from features.schema import FEATURE_SCHEMA_VERSION, describe_features, feature_columns
-    from models.bundle import TARGETS
-    from models.card import render_model_card
-    from models.conformal import grouped_split
-    from training.campaign import load_campaign
+    from waneguide.features.conventional import conventional_estimate_frame
+    from waneguide.features.schema import FEATURE_SCHEMA_VERSION, describe_features, feature_columns
+    from waneguide.models.bundle import TARGETS
+    from waneguide.models.card import render_model_card
+    from waneguide.models.conformal import grouped_split
+    from waneguide.simulation.campaign import load_campaign
 
-    from .tracking import TrackedRun, experiment_name
+    from waneguide.operations.tracking import TrackedRun, experiment_name
 
-    from features.atomic import check_output_dir
+    from waneguide.core.atomic import check_output_dir
 
     t_start = time.perf_counter()
     cfg = config or TrainConfig()
@@ -551,7 +551,7 @@ def train_model(family, campaign_dir, out_dir, *, measured_csv=None, tracking_ur
                             "random_state": random_state, "measured_csv": str(measured_csv or "")})
             run.log_metrics({k: v for k, v in bundle.metrics.items() if k not in ("fit", "gp")})
             run.log_artifacts(path, artifact_path="bundle")
-            from models.registry import register_bundle
+            from waneguide.operations.registry import register_bundle
 
             result.model_version = register_bundle(path, fam.name, run_id=run.run_id, tracking_uri=tracking_uri)
             result.run_id = run.run_id

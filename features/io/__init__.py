@@ -19,10 +19,10 @@ import os
 from pathlib import Path
 from typing import Iterable
 
-from ..capture import Capture
-from ._meta import UNITS, from_volts, to_volts
-from .csv_format import read_csv_capture, write_csv_capture
-from .errors import (
+from waneguide.features.capture import Capture
+from waneguide.features.io._meta import UNITS, from_volts, to_volts
+from waneguide.features.io.csv_format import read_csv_capture, write_csv_capture
+from waneguide.features.io.errors import (
     CaptureFileError,
     CorruptFileError,
     EmptyDataError,
@@ -32,9 +32,9 @@ from .errors import (
     UnknownUnitsError,
     UnsupportedFormatError,
 )
-from .hdf5_format import read_hdf5_capture, write_hdf5_capture
-from .mat_format import read_mat_capture, write_mat_capture
-from .npz_format import read_npz_capture, write_npz_capture
+from waneguide.features.io.hdf5_format import read_hdf5_capture, write_hdf5_capture
+from waneguide.features.io.mat_format import read_mat_capture, write_mat_capture
+from waneguide.features.io.npz_format import read_npz_capture, write_npz_capture
 
 __all__ = [
     "CAPTURE_SUFFIXES",

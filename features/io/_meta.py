@@ -17,8 +17,8 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from ..capture import CAPTURE_METADATA_KEYS, Capture
-from .errors import EmptyDataError, InvalidFieldError, MissingFieldError, UnknownUnitsError
+from waneguide.features.capture import CAPTURE_METADATA_KEYS, Capture
+from waneguide.features.io.errors import EmptyDataError, InvalidFieldError, MissingFieldError, UnknownUnitsError
 
 __all__ = ["UNITS", "to_volts", "from_volts", "capture_from_fields", "fields_from_capture"]
 

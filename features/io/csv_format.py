@@ -24,10 +24,10 @@ from pathlib import Path
 
 import numpy as np
 
-from ..atomic import atomic_write_text
-from ..capture import Capture
-from ._meta import capture_from_fields, fields_from_capture
-from .errors import CorruptFileError, EmptyDataError, InvalidFieldError, MissingFieldError, TimeAxisError
+from waneguide.core.atomic import atomic_write_text
+from waneguide.features.capture import Capture
+from waneguide.features.io._meta import capture_from_fields, fields_from_capture
+from waneguide.features.io.errors import CorruptFileError, EmptyDataError, InvalidFieldError, MissingFieldError, TimeAxisError
 
 __all__ = ["read_csv_capture", "write_csv_capture"]
 

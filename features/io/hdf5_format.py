@@ -10,10 +10,10 @@ from pathlib import Path
 
 import numpy as np
 
-from ..atomic import atomic_path
-from ..capture import Capture
-from ._meta import capture_from_fields, fields_from_capture
-from .errors import CorruptFileError, MissingFieldError
+from waneguide.core.atomic import atomic_path
+from waneguide.features.capture import Capture
+from waneguide.features.io._meta import capture_from_fields, fields_from_capture
+from waneguide.features.io.errors import CorruptFileError, MissingFieldError
 
 __all__ = ["read_hdf5_capture", "write_hdf5_capture"]
 

@@ -63,7 +63,7 @@ DEFAULT_CHUNK = 32
 # --------------------------------------------------------------------------------------
 def load_model(model, *, tracking_uri: str | None = None):
     """A :class:`~models.bundle.ModelBundle` from a bundle, a bundle folder or a registry name."""
-    from models.bundle import ModelBundle, load_bundle
+    from waneguide.models.bundle import ModelBundle, load_bundle
 
     if isinstance(model, ModelBundle):
         return model
@@ -71,21 +71,21 @@ def load_model(model, *, tracking_uri: str | None = None):
     if p.exists():
         return load_bundle(p)
     try:
-        from models.registry import resolve_model
+        from waneguide.operations.registry import resolve_model
     except ImportError:  # registry not available: only folders work
         raise ValueError(f"model {str(model)!r} is neither a bundle folder nor a known registry name.") from None
     return load_bundle(resolve_model(str(model), tracking_uri=tracking_uri))
 
 
 def _is_capture(x) -> bool:
-    from features.capture import Capture
+    from waneguide.features.capture import Capture
 
     return isinstance(x, Capture)
 
 
 def _items(captures) -> list:
     """Capture objects and file paths, in input order (directories expanded, sorted)."""
-    from features.io import capture_files
+    from waneguide.features.io import capture_files
 
     if captures is None:
         raise ValueError("no captures given; pass a folder, files, or Capture objects.")
@@ -109,7 +109,7 @@ def _items(captures) -> list:
 
 
 def _read(item):
-    from features.io import read_capture
+    from waneguide.features.io import read_capture
 
     if _is_capture(item):
         return item
@@ -171,7 +171,7 @@ def _baselines(baselines, captures_arg, family) -> dict[str, list]:
 
 def _check_item(item, family, hashes_done: set, baseline_paths) -> tuple[str, str, str | None, bool]:
     """(content hash, path_id, refusal or None, already scored) for one capture."""
-    from models.history import capture_content_hash
+    from waneguide.operations.history import capture_content_hash
 
     cap = _read(item)
     why = check_fits_model(cap, family)
@@ -187,8 +187,8 @@ def _score_chunk(bundle, items: Sequence, baselines_by_path: dict, limit_pct, ba
     """Score one chunk; returns history rows (worker side: no database access)."""
     import pandas as pd
 
-    from features.extractor import extract_feature_table
-    from models.history import capture_content_hash
+    from waneguide.features.extractor import extract_feature_table
+    from waneguide.operations.history import capture_content_hash
 
     caps = [_read(it) for it in items]
     family = bundle.family
@@ -344,7 +344,7 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
         fails its integrity check, bad ``limit_pct``/``n_jobs``/``chunk_size``.
     """
 
-    from models.history import History
+    from waneguide.operations.history import History
 
     limit_pct = check_limit_pct(limit_pct)
     if int(n_jobs) != n_jobs or n_jobs == 0 or n_jobs < -1:
@@ -406,7 +406,7 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
 
 def write_scores_csv(df, path) -> Path:
     """Write the score table as CSV atomically (``--out``)."""
-    from features.atomic import atomic_path
+    from waneguide.core.atomic import atomic_path
 
     with atomic_path(path) as tmp:
         df.to_csv(tmp, index=False, lineterminator="\n")
@@ -415,7 +415,7 @@ def write_scores_csv(df, path) -> Path:
 
 def format_scores(df, *, max_rows: int = 60) -> str:
     """The score table for the terminal (a few columns, rounded) with the caution."""
-    from waneguide_cli.main import CAUTION
+    from waneguide.core.caution import CAUTION
 
     view = df.copy()
     view["file"] = [Path(str(f)).name for f in view["file"]]

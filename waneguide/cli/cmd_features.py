@@ -21,7 +21,7 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from features.extractor import build_feature_file
+    from waneguide.features.extractor import build_feature_file
 
     df = build_feature_file(args.family, args.captures, args.baselines, args.out, n_jobs=args.jobs,
                             on_reject="skip" if args.skip_rejected else "raise")

@@ -31,8 +31,8 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from training.pipeline import TrainConfig, format_summary, train_model
-    from waneguide_cli.main import CAUTION
+    from waneguide.training.pipeline import TrainConfig, format_summary, train_model
+    from waneguide.core.caution import CAUTION
 
     res = train_model(args.family, args.campaign, args.out, measured_csv=args.measured,
                       tracking_uri=args.tracking_uri, random_state=args.seed, progress=not args.quiet,

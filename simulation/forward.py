@@ -95,9 +95,9 @@ import numpy as np
 import scipy.fft as sfft
 from scipy.special import j1
 
-from features.capture import Capture
-from features.dispersion import fundamental_dispersion
-from features.family import Family
+from waneguide.features.capture import Capture
+from waneguide.features.dispersion import fundamental_dispersion
+from waneguide.features.family import Family
 
 __all__ = [
     "FORWARD_MODEL_VERSION",

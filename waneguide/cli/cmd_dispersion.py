@@ -21,8 +21,8 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from features.atomic import check_output_path
-    from features.curves_io import compute_dispersion_table, plot_dispersion, write_dispersion_csv
+    from waneguide.core.atomic import check_output_path
+    from waneguide.features.curves_io import compute_dispersion_table, plot_dispersion, write_dispersion_csv
 
     check_output_path(args.out, "curves CSV (--out)")  # both outputs checked before any is written
     if args.plot is not None:

@@ -135,7 +135,7 @@ def _number(path, line: int, column: str, text: str, *, allow_zero: bool) -> flo
 
 def write_readings(readings, path: str | Path) -> Path:
     """Write readings (a DataFrame with :data:`READING_COLUMNS`) as CSV, atomically."""
-    from features.atomic import atomic_path
+    from waneguide.core.atomic import atomic_path
 
     df = readings[list(READING_COLUMNS)].copy()
     df["date"] = [d.isoformat() if hasattr(d, "isoformat") else str(d) for d in df["date"]]

@@ -34,8 +34,8 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from models.audit import AuditSettings, check_audit_options, format_audit, run_audit
-    from models.scoring import load_model
+    from waneguide.operations.audit import AuditSettings, check_audit_options, format_audit, run_audit
+    from waneguide.operations.scoring import load_model
 
     check_audit_options(limit_pct=args.limit_pct, report_path=args.report)  # before loading the model
     bundle = load_model(args.model, tracking_uri=args.tracking_uri)

@@ -28,11 +28,12 @@ from typing import Any
 
 import numpy as np
 
-from waneguide_cli.main import CAUTION
+from waneguide.configs import config_path
+from waneguide.core.caution import CAUTION
 
 __all__ = ["DemoScenario", "run_demo", "scenario"]
 
-FAMILY_FILE = Path(__file__).resolve().parent.parent / "configs" / "families" / "demo_fb2.toml"
+FAMILY_FILE = config_path("families", "demo_fb2.toml")
 START_DATE = np.datetime64("2025-03-03T08:00")
 LIMIT_PCT = 15.0
 
@@ -76,7 +77,7 @@ def _iso(week: int, *, days: float = 0.0) -> str:
 
 def _profile(family, path_id: str, week: int, sc: DemoScenario):
     """Thickness profile of a path in a given week (invented corrosion growth)."""
-    from training.profiles import flat_patch_profile, pit_profile, pristine_profile
+    from waneguide.simulation.profiles import flat_patch_profile, pit_profile, pristine_profile
 
     L = family.path.transducer_spacing_mm * 1e-3
     t0 = family.nominal_thickness_m
@@ -105,8 +106,8 @@ def make_season(family, folder: Path, sc: DemoScenario, *, progress: bool = True
     import pandas as pd
     from dataclasses import replace
 
-    from features.io import write_capture
-    from training.forward import simulate_capture
+    from waneguide.features.io import write_capture
+    from waneguide.simulation.forward import simulate_capture
 
     rng = np.random.default_rng(sc.seed)
     caps = folder / "captures"
@@ -129,7 +130,7 @@ def make_season(family, folder: Path, sc: DemoScenario, *, progress: bool = True
 
         bar = tqdm(total=len(items), desc="season captures", unit="capture", leave=False)
     odd_week = sc.n_weeks - 4
-    from features.family import family_from_mapping
+    from waneguide.features.family import family_from_mapping
 
     data = family.model_dump(mode="json")
     data["path"]["transducer_spacing_mm"] = round(family.path.transducer_spacing_mm * 1.1, 3)
@@ -176,7 +177,7 @@ def make_readings(family, path: Path, sc: DemoScenario, *, seed: int | None = No
     spot checks on a sound path. Gauge scatter 0.02 mm (stated uncertainty)."""
     import pandas as pd
 
-    from models.readings import write_readings
+    from waneguide.operations.readings import write_readings
 
     rng = np.random.default_rng(sc.seed + 1 if seed is None else seed)
     L_mm = family.path.transducer_spacing_mm
@@ -206,7 +207,7 @@ def make_readings(family, path: Path, sc: DemoScenario, *, seed: int | None = No
 
 def _train(family, campaign_dir: Path, out: Path, *, tracking_uri: str, progress: bool, quick: bool, workers: int):
     """train_model with settings sized for the demo's time budget (stated in the model's metrics)."""
-    from training.pipeline import TrainConfig, train_model
+    from waneguide.training.pipeline import TrainConfig, train_model
 
     # LightGBM on one thread: on these small tables threads cost more than they give (measured: 10 s vs
     # 120 s for the quick demo on a busy 2-core machine)
@@ -250,11 +251,11 @@ def run_demo(out_dir: str | Path, *, quick: bool = False, progress: bool = True,
 
 
 def _run(out_dir, *, quick: bool, progress: bool, workers: int) -> dict[str, Path]:
-    from features.family import load_family
-    from models.audit import format_audit, run_audit
-    from models.history import History
-    from models.scoring import format_scores, score_captures
-    from training.campaign import run_campaign
+    from waneguide.features.family import load_family
+    from waneguide.operations.audit import format_audit, run_audit
+    from waneguide.operations.history import History
+    from waneguide.operations.scoring import format_scores, score_captures
+    from waneguide.simulation.campaign import run_campaign
 
     t_start = time.time()
     out = Path(out_dir).resolve()
@@ -278,7 +279,7 @@ def _run(out_dir, *, quick: bool, progress: bool, workers: int) -> dict[str, Pat
     models_dir = out / "models"
     bundle_path, train_res = _train(family, camp_dir, models_dir, tracking_uri=tracking_uri, progress=progress,
                                     quick=quick, workers=workers)
-    from training.pipeline import format_summary
+    from waneguide.training.pipeline import format_summary
 
     _say("      " + format_summary(train_res).replace("\n", "\n      "))
 
@@ -286,7 +287,7 @@ def _run(out_dir, *, quick: bool, progress: bool, workers: int) -> dict[str, Pat
             f"temperature swings on all, corrosion growing on {', '.join(sc.growth)}")
     season = make_season(family, out / "season", sc, progress=progress)
     truth_csv = out / "season" / "truth.csv"
-    from features.atomic import atomic_path
+    from waneguide.core.atomic import atomic_path
 
     with atomic_path(truth_csv) as tmp:
         season["truth"].to_csv(tmp, index=False)
@@ -295,7 +296,7 @@ def _run(out_dir, *, quick: bool, progress: bool, workers: int) -> dict[str, Pat
     scores = score_captures(bundle_path, season["captures"], baselines=season["baselines"], limit_pct=LIMIT_PCT,
                             db_url=db_url, n_jobs=workers, progress=progress)
     results_csv = out / "scores.csv"
-    from models.scoring import write_scores_csv
+    from waneguide.operations.scoring import write_scores_csv
 
     write_scores_csv(scores, results_csv)
     latest = scores.sort_values("captured_at").groupby("path_id").tail(1)

@@ -1,6 +1,6 @@
 """The ``waneguide`` command: one subcommand per job, each a thin layer over a library call.
 
-Subcommands live in ``waneguide_cli/cmd_<name>.py``; each module exposes
+Subcommands live in ``waneguide/cli/cmd_<name>.py``; each module exposes
 ``ORDER`` (an int: its place in ``--help``) and ``register(subparsers)``, which
 adds its parser and sets ``func``. Modules are found by name, so adding a
 command never edits this file. Heavy imports
@@ -25,7 +25,7 @@ def command_modules() -> list[str]:
     from pathlib import Path
 
     names = [m.name for m in pkgutil.iter_modules([str(Path(__file__).parent)]) if m.name.startswith("cmd_")]
-    mods = [importlib.import_module(f"waneguide_cli.{n}") for n in names]
+    mods = [importlib.import_module(f"waneguide.cli.{n}") for n in names]
     return [m.__name__ for m in sorted(mods, key=lambda m: (getattr(m, "ORDER", 100), m.__name__))]
 
 CAUTION = (

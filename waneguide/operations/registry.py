@@ -28,7 +28,7 @@ from mlflow.pyfunc import PythonModel
 
 class WaneguideBundleModel(PythonModel):
     def load_context(self, context):
-        from models.bundle import load_bundle
+        from waneguide.models.bundle import load_bundle
 
         self.bundle = load_bundle(context.artifacts["bundle"])
 
@@ -66,9 +66,9 @@ def register_bundle(bundle_dir, family_name: str, *, alias: str | None = DEFAULT
     of the family's experiment. ``alias`` (default ``in-service``) is moved to the new version;
     ``None`` leaves the aliases alone.
     """
-    from training.tracking import experiment_name, init_tracking
+    from waneguide.operations.tracking import experiment_name, init_tracking
 
-    from .bundle import load_bundle
+    from waneguide.models.bundle import load_bundle
 
     bundle_dir = Path(bundle_dir).resolve()
     bundle = load_bundle(bundle_dir)  # refuses a tampered or foreign bundle before it is registered
@@ -112,7 +112,7 @@ def register_bundle(bundle_dir, family_name: str, *, alias: str | None = DEFAULT
 
 def set_alias(family_name: str, version: str, alias: str = DEFAULT_ALIAS, tracking_uri=None) -> None:
     """Point ``alias`` of the family's registered model at ``version``."""
-    from training.tracking import init_tracking
+    from waneguide.operations.tracking import init_tracking
 
     init_tracking(tracking_uri)
     from mlflow.tracking import MlflowClient
@@ -137,7 +137,7 @@ def resolve_model(name_or_dir, tracking_uri=None) -> Path:
     if not m:
         raise ValueError(f"{str(name_or_dir)!r} is neither an existing bundle directory nor a model reference "
                          f"(NAME, NAME@ALIAS, NAME/VERSION)")
-    from training.tracking import init_tracking
+    from waneguide.operations.tracking import init_tracking
 
     uri = init_tracking(tracking_uri)
     from mlflow.exceptions import MlflowException

@@ -18,7 +18,7 @@ def materials_table():
     """The built-in materials as a DataFrame with :data:`MATERIAL_COLUMNS`."""
     import pandas as pd
 
-    from features import BUILTIN_MATERIALS
+    from waneguide.features import BUILTIN_MATERIALS
 
     rows = [BUILTIN_MATERIALS[n].as_row() for n in sorted(BUILTIN_MATERIALS)]
     return pd.DataFrame(rows, columns=list(MATERIAL_COLUMNS))

@@ -38,8 +38,8 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from features.atomic import check_output_path
-    from models.scoring import format_scores, score_captures, write_scores_csv
+    from waneguide.core.atomic import check_output_path
+    from waneguide.operations.scoring import format_scores, score_captures, write_scores_csv
 
     if args.out is not None:  # fail before scoring, not after
         check_output_path(args.out, "results CSV (--out)")

@@ -16,11 +16,11 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from waneguide_cli.demo import run_demo
+    from waneguide.cli.demo import run_demo
 
     if args.workers < 1:
         raise ValueError(f"--workers must be a positive integer; got {args.workers}.")
-    from features.atomic import check_output_dir
+    from waneguide.core.atomic import check_output_dir
 
     check_output_dir(args.out, "demo output folder (--out)")
     run_demo(args.out, quick=args.quick, progress=not args.no_progress, workers=args.workers)

@@ -19,9 +19,9 @@ from typing import Iterable
 
 import pandas as pd
 
-from features.atomic import atomic_write_text
+from waneguide.core.atomic import atomic_write_text
 
-from .campaign import load_campaign
+from waneguide.simulation.campaign import load_campaign
 
 __all__ = ["export_campaign_captures", "EXPORT_FORMATS"]
 
@@ -54,7 +54,7 @@ def export_campaign_captures(campaign_dir: str | Path, out_dir: str | Path, *, c
     fmt = str(fmt).lower().lstrip(".")
     if fmt not in EXPORT_FORMATS:
         raise ValueError(f"fmt must be one of {', '.join(EXPORT_FORMATS)}; got {fmt!r}.")
-    from features.io import write_capture
+    from waneguide.features.io import write_capture
 
     camp = load_campaign(campaign_dir)
     table = camp.cases

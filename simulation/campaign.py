@@ -53,12 +53,12 @@ from typing import Any, Iterator
 import numpy as np
 import pandas as pd
 
-from features.atomic import atomic_path, atomic_write_text
-from features.capture import Capture
-from features.family import Family, family_from_mapping, load_family
+from waneguide.core.atomic import atomic_path, atomic_write_text
+from waneguide.features.capture import Capture
+from waneguide.features.family import Family, family_from_mapping, load_family
 
-from .forward import FORWARD_MODEL_VERSION, ForwardModel
-from .profiles import TRUTH_COLUMNS, sample_site, site_shape, truth_arrays
+from waneguide.simulation.forward import FORWARD_MODEL_VERSION, ForwardModel
+from waneguide.simulation.profiles import TRUTH_COLUMNS, sample_site, site_shape, truth_arrays
 
 __all__ = [
     "CAMPAIGN_FORMAT_VERSION",
@@ -268,7 +268,7 @@ def _write_npz(path: Path, arrays: dict[str, np.ndarray]) -> str:
 
 
 def _sha256(path: Path) -> str:
-    from features.atomic import file_sha256
+    from waneguide.core.atomic import file_sha256
 
     return file_sha256(path)
 
@@ -413,7 +413,7 @@ def run_campaign(
 
         if not isinstance(scheduler, Client):
             raise ValueError(f"scheduler must be a Dask address or a dask.distributed.Client; got {type(scheduler).__name__}.")
-    from features.atomic import check_output_dir
+    from waneguide.core.atomic import check_output_dir
 
     out = check_output_dir(out_dir, "campaign folder (--out)")
     fingerprint = campaign_fingerprint(family, n, seed=seed, chunk_size=chunk_size)
@@ -676,7 +676,7 @@ class Campaign:
 
     def profile(self, i: int):
         """The thickness profile of case ``i`` as a :class:`~training.profiles.ThinningProfile`."""
-        from .profiles import ThinningProfile
+        from waneguide.simulation.profiles import ThinningProfile
 
         arrays, j, row = self._locate(i)
         fam = self.family

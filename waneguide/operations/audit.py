@@ -35,7 +35,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from models.drift import PSI_MAJOR, PageHinkley, cusum_arl_siegmund, feature_drift, two_sided_arl
+from waneguide.operations.drift import PSI_MAJOR, PageHinkley, cusum_arl_siegmund, feature_drift, two_sided_arl
 
 __all__ = [
     "AuditSettings",
@@ -672,11 +672,11 @@ def check_audit_options(*, limit_pct: float | None = None, report_path=None) -> 
     Returns the limit as a float (or None). The limit follows the rule of scoring
     (:func:`models.scoring.score_captures`): 0 < L < 100 [% of nominal thickness].
     """
-    from models.scoring import check_limit_pct
+    from waneguide.operations.scoring import check_limit_pct
 
     limit_pct = check_limit_pct(limit_pct, "limit_pct (--limit-pct)")
     if report_path is not None:
-        from features.atomic import check_output_path
+        from waneguide.core.atomic import check_output_path
 
         check_output_path(report_path, "audit report (--report)")
     return limit_pct
@@ -704,8 +704,8 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
     """
     import pandas as pd
 
-    from models.history import History, resolve_db_url, sqlite_file
-    from models.readings import read_readings
+    from waneguide.operations.history import History, resolve_db_url, sqlite_file
+    from waneguide.operations.readings import read_readings
 
     limit_pct = check_audit_options(limit_pct=limit_pct, report_path=report_path)
     db_file = sqlite_file(resolve_db_url(db_url))
@@ -714,7 +714,7 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
         raise ValueError(f"history database {str(db_file)!r} does not exist; give the --db the captures were "
                          "scored into (`waneguide score --db ...`).")
     if isinstance(bundle, (str, Path)):
-        from models.bundle import load_bundle
+        from waneguide.models.bundle import load_bundle
 
         bundle = load_bundle(bundle)
     s = settings or AuditSettings()
@@ -750,7 +750,7 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
         result.audit_id = hist.add_audit(model_version=ident["model_version"], verdict=result.verdict,
                                          summary=result.summary(), readings_file=str(readings_csv))
         if report_path is not None:
-            from models.report import write_report
+            from waneguide.operations.report import write_report
 
             result.report_path = write_report(report_path, scores=scores, audit=result, model=ident,
                                                limit_pct=limit_pct)
@@ -800,8 +800,8 @@ def _recalibrate(bundle, hist, result: AuditResult, *, tracking_uri=None) -> dic
         target = new.save(target)
     info: dict[str, Any] = {"bundle_path": target, "model_version": new.version,
                             "parent_version": result.model["model_version"]}
-    from models.registry import register_bundle
-    from training.tracking import TrackedRun, experiment_name
+    from waneguide.operations.registry import register_bundle
+    from waneguide.operations.tracking import TrackedRun, experiment_name
 
     family_name = result.model["family_name"]
     with TrackedRun(experiment_name(family_name), run_name=f"recalibrate {info['parent_version']} -> {new.version}",
@@ -819,7 +819,7 @@ def _recalibrate(bundle, hist, result: AuditResult, *, tracking_uri=None) -> dic
 
 def format_audit(result: AuditResult) -> str:
     """Plain-text summary of an audit for the terminal."""
-    from waneguide_cli.main import CAUTION
+    from waneguide.core.caution import CAUTION
 
     lines = [f"verdict: {result.verdict.upper()}"]
     lines += [f"  - {r}" for r in result.reasons]

@@ -215,7 +215,7 @@ def _drift_figure(drift, settings):
 
 
 def _feature_drift_figure(ft, top=15):
-    from models.drift import PSI_MAJOR, PSI_MODERATE
+    from waneguide.operations.drift import PSI_MAJOR, PSI_MODERATE
 
     g = ft.dropna(subset=["psi"]).sort_values("psi", ascending=False).head(top)[::-1]
     fig = _fig(8.0, 0.32 * max(len(g), 3) + 1.2)
@@ -261,7 +261,7 @@ def render_report(*, scores, audit=None, model: Mapping[str, Any] | None = None,
     """The report as one HTML string (see :func:`write_report`)."""
     import pandas as pd
 
-    from waneguide_cli.main import CAUTION
+    from waneguide.core.caution import CAUTION
 
     model = dict(model or {})
     if audit is not None and not model:
@@ -450,7 +450,7 @@ def write_report(path, *, scores, audit=None, model: Mapping[str, Any] | None = 
     limit_pct : float, optional
         Limit line [% of nominal]; default: the limit stored with the scores.
     """
-    from features.atomic import atomic_write_text
+    from waneguide.core.atomic import atomic_write_text
 
     text = render_report(scores=scores, audit=audit, model=model, limit_pct=limit_pct, title=title)
     return atomic_write_text(path, text)

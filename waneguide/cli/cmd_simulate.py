@@ -20,7 +20,7 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from training.campaign import run_campaign
+    from waneguide.simulation.campaign import run_campaign
 
     import sys
 

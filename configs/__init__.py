@@ -1,0 +1,23 @@
+"""Bundled configuration files, shipped as package data of ``waneguide.configs``.
+
+``families/*.toml`` (stiffener families; the ``demo_*`` ones describe the invented Lowmoor
+test rig) and ``materials/*.toml`` (example user material). Find them with
+:func:`waneguide.configs.config_path`, which works from a source tree and from an installed wheel.
+"""
+from __future__ import annotations
+
+from importlib.resources import files
+from pathlib import Path
+
+__all__ = ["config_path"]
+
+
+def config_path(*parts: str) -> Path:
+    """Path of a bundled configuration file, e.g. ``config_path("families", "demo_fb2.toml")``."""
+    p = Path(str(files(__name__).joinpath(*parts)))
+    if not p.exists():
+        from waneguide.core.errors import MissingInputError
+
+        raise MissingInputError(f"no bundled configuration file {'/'.join(parts)!r}; "
+                                f"bundled: {sorted(str(q.relative_to(p.parents[len(parts)-1])) for q in Path(str(files(__name__))).rglob('*.toml'))}")
+    return p

@@ -1,0 +1,5 @@
+import sys
+
+from waneguide.cli.main import main
+
+sys.exit(main())

@@ -1,0 +1,30 @@
+"""Offline defaults and the default locations of the tool's stores.
+
+waneguide makes no network calls of its own. :func:`offline_defaults` switches library
+telemetry off (MLflow's among them) unless the user has set the variables already; every entry
+point calls it before importing MLflow.
+"""
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+__all__ = ["offline_defaults", "DEFAULT_HISTORY_FILE", "DEFAULT_TRACKING_FILE", "default_tracking_uri"]
+
+#: SQLite history database used when ``--db`` is not given (in the working directory).
+DEFAULT_HISTORY_FILE = "waneguide-history.db"
+#: SQLite MLflow store used when ``--tracking-uri`` is not given (in the working directory).
+DEFAULT_TRACKING_FILE = "mlflow.db"
+
+
+def offline_defaults() -> None:
+    """Switch telemetry and progress chatter of third-party libraries off (unless set already)."""
+    os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
+    os.environ.setdefault("DO_NOT_TRACK", "true")
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+
+
+def default_tracking_uri(base_dir: str | Path | None = None) -> str:
+    """``sqlite:///`` + absolute path of :data:`DEFAULT_TRACKING_FILE` in ``base_dir`` (default: cwd)."""
+    base = Path(base_dir) if base_dir is not None else Path.cwd()
+    return f"sqlite:///{(base / DEFAULT_TRACKING_FILE).resolve()}"
