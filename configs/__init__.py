@@ -14,10 +14,11 @@ __all__ = ["config_path"]
 
 def config_path(*parts: str) -> Path:
     """Path of a bundled configuration file, e.g. ``config_path("families", "demo_fb2.toml")``."""
-    p = Path(str(files(__name__).joinpath(*parts)))
+    root = Path(str(files(__name__)))
+    p = root.joinpath(*parts)
     if not p.exists():
         from waneguide.core.errors import MissingInputError
 
-        raise MissingInputError(f"no bundled configuration file {'/'.join(parts)!r}; "
-                                f"bundled: {sorted(str(q.relative_to(p.parents[len(parts)-1])) for q in Path(str(files(__name__))).rglob('*.toml'))}")
+        bundled = sorted(q.relative_to(root).as_posix() for q in root.rglob("*.toml"))
+        raise MissingInputError(f"no bundled configuration file {'/'.join(parts)!r}; bundled: {bundled}")
     return p

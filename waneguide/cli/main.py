@@ -13,9 +13,11 @@ from __future__ import annotations
 
 import argparse
 import importlib
-import os
 import sys
 from typing import Sequence
+
+from waneguide.core.caution import CAUTION
+from waneguide.core.settings import offline_defaults
 
 
 
@@ -28,11 +30,6 @@ def command_modules() -> list[str]:
     mods = [importlib.import_module(f"waneguide.cli.{n}") for n in names]
     return [m.__name__ for m in sorted(mods, key=lambda m: (getattr(m, "ORDER", 100), m.__name__))]
 
-CAUTION = (
-    "Decision support only: not a replacement for the inspections that the maintenance programme "
-    "mandates, done by certified NDT personnel. Defer to the structural repair manual, local "
-    "regulations and licensed engineering practice."
-)
 
 
 class UserError(Exception):
@@ -52,8 +49,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
-    os.environ.setdefault("DO_NOT_TRACK", "true")
+    offline_defaults()
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "command", None):

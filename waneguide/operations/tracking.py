@@ -16,21 +16,12 @@ import threading
 from pathlib import Path
 from typing import Any, Mapping
 
+from waneguide.core.settings import default_tracking_uri, offline_defaults
+
 __all__ = ["default_tracking_uri", "init_tracking", "TrackedRun", "flatten_metrics", "experiment_name"]
 
 _READY: set[str] = set()
 _LOCK = threading.Lock()
-
-
-def _quiet_env() -> None:
-    os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
-    os.environ.setdefault("DO_NOT_TRACK", "true")
-    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
-
-
-def default_tracking_uri() -> str:
-    """``sqlite:///`` + absolute path of ``mlflow.db`` in the working directory."""
-    return f"sqlite:///{(Path.cwd() / 'mlflow.db').resolve()}"
 
 
 def experiment_name(family_name: str) -> str:
@@ -39,7 +30,7 @@ def experiment_name(family_name: str) -> str:
 
 def init_tracking(tracking_uri: str | None = None) -> str:
     """Point MLflow at ``tracking_uri`` (default: :func:`default_tracking_uri`) and create the store once."""
-    _quiet_env()
+    offline_defaults()
     uri = tracking_uri or default_tracking_uri()
     import mlflow
     from mlflow.tracking import MlflowClient
