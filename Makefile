@@ -7,7 +7,7 @@ BIN := $(VENV)/bin
 STAMP := $(VENV)/.waneguide-installed
 PYTEST_ARGS ?=
 
-.PHONY: setup demo test test-quick bench clean
+.PHONY: setup demo test test-quick lint bench clean
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -21,10 +21,14 @@ demo: $(STAMP)
 	MLFLOW_DISABLE_TELEMETRY=true $(BIN)/waneguide demo --out demo-output
 
 test: $(STAMP)
+	$(BIN)/ruff check .
 	MLFLOW_DISABLE_TELEMETRY=true $(BIN)/python -m pytest $(PYTEST_ARGS)
 
 test-quick: $(STAMP)
 	MLFLOW_DISABLE_TELEMETRY=true $(BIN)/python -m pytest -m "not slow" $(PYTEST_ARGS)
+
+lint: $(STAMP)
+	$(BIN)/ruff check .
 
 bench: $(STAMP)
 	for b in benchmarks/bench_*.py; do echo "== $$b"; $(BIN)/python $$b || exit 1; done

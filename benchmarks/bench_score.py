@@ -36,8 +36,8 @@ def main() -> int:
     fam = load_family(Path(__file__).resolve().parent.parent / "configs" / "families" / "demo_fb2.toml")
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        run_campaign(fam, 400, tmp / "camp", seed=3, workers=2, progress=False)
-        res = train_model(fam, tmp / "camp", tmp / "models", progress=False, track=False, shift_study=False,
+        run_campaign(fam, 400, tmp / "camp", seed=3, n_jobs=2, progress=False)
+        res = train_model(fam, tmp / "camp", tmp / "models", progress=False, shift_study=False,
                           config=TrainConfig(n_estimators=150, gp_points=200, n_jobs=1))
         rng = np.random.default_rng(0)
         L = fam.path.transducer_spacing_mm * 1e-3

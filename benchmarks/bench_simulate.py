@@ -35,9 +35,9 @@ TARGET_CAMPAIGN_S = 60.0
 
 def _throughput_task(fm, plan, seed):
     """Simulate one chunk in a worker and drop it (pure compute, no disk, no transfer)."""
-    from waneguide.simulation.campaign import _simulate_chunk
+    from waneguide.simulation._chunk import simulate_chunk
 
-    arrays = _simulate_chunk(fm, plan, seed)
+    arrays = simulate_chunk(fm, plan, seed)
     return len(arrays["case_index"]), len(arrays["specimen_index"])
 
 
@@ -56,7 +56,7 @@ def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--family", default=str(ROOT / "configs" / "families" / "demo_fb2.toml"))
     ap.add_argument("--cases", type=int, default=20000)
-    ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--jobs", type=int, default=2, help="worker processes (default 2)")
     args = ap.parse_args(argv)
 
     from joblib import Parallel, delayed
@@ -84,15 +84,15 @@ def main(argv=None) -> None:
         _throughput_task(fm, c, 1)
     t1 = time.perf_counter() - t0
     print(f"one core: {4 * cs / t1:,.0f} captures/s")
-    par = Parallel(n_jobs=args.workers)
-    par(delayed(_throughput_task)(fm, c, 1) for c in chunks[:args.workers])  # start and warm the workers
+    par = Parallel(n_jobs=args.jobs)
+    par(delayed(_throughput_task)(fm, c, 1) for c in chunks[:args.jobs])  # start and warm the workers
     t0 = time.perf_counter()
     res = par(delayed(_throughput_task)(fm, c, 1) for c in chunks)
     t_par = time.perf_counter() - t0
     n_cap = sum(r[0] for r in res)
     n_base = sum(r[1] for r in res)
     rate = n_cap / t_par
-    print(f"{args.workers} workers: {rate:,.0f} captures/s, {(n_cap + n_base) / t_par:,.0f} waveforms/s with "
+    print(f"{args.jobs} jobs: {rate:,.0f} captures/s, {(n_cap + n_base) / t_par:,.0f} waveforms/s with "
           f"baselines (target {TARGET_CAPTURES_PER_S:,.0f} captures/s, ratio {rate / TARGET_CAPTURES_PER_S:.2f})")
 
     # 2. campaigns written to disk (fresh process pool state each: includes start-up and table build)
@@ -102,10 +102,10 @@ def main(argv=None) -> None:
         for n in (small, args.cases):
             out = tmp / f"camp_{n}"
             t0 = time.perf_counter()
-            camp = run_campaign(fam, n, out, seed=0, workers=args.workers, progress=False)
+            camp = run_campaign(fam, n, out, seed=0, n_jobs=args.jobs, progress=False)
             dt = time.perf_counter() - t0
             size = sum(p.stat().st_size for p in out.rglob("*") if p.is_file())
-            worker_peak = max(Parallel(n_jobs=args.workers)(delayed(_peak_rss_mb)() for _ in range(4 * args.workers)))
+            worker_peak = max(Parallel(n_jobs=args.jobs)(delayed(_peak_rss_mb)() for _ in range(4 * args.jobs)))
             line = (f"campaign of {n:,} cases to disk: {dt:.1f} s ({n / dt:,.0f} cases/s), {size / 1e9:.2f} GB, "
                     f"{len(camp.manifest['chunks'])} chunks; peak RSS main {_peak_rss_mb():.0f} MB, "
                     f"worker {worker_peak:.0f} MB")

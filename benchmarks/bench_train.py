@@ -43,7 +43,7 @@ def main(argv=None) -> int:
     from waneguide.models.bundle import TARGETS, load_bundle
     from waneguide.models.conformal import grouped_split
     from waneguide.simulation.campaign import load_campaign, run_campaign
-    from waneguide.training.pipeline import TrainConfig, campaign_features, evaluate_bundle, fit_bundle
+    from waneguide.training.pipeline import TrainConfig, cached_campaign_features, evaluate_bundle, fit_bundle
 
     fam_path = Path(__file__).resolve().parent.parent / "configs" / "families" / "demo_fb2.toml"
     fam = load_family(fam_path)
@@ -52,20 +52,15 @@ def main(argv=None) -> int:
     if not (camp_dir / "manifest.json").is_file():
         print(f"simulating {args.cases} cases into {camp_dir} (once) ...")
         t0 = time.perf_counter()
-        run_campaign(fam, args.cases, camp_dir, seed=2024, workers=2, progress=True)
+        run_campaign(fam, args.cases, camp_dir, seed=2024, n_jobs=2, progress=True)
         print(f"  simulated in {time.perf_counter() - t0:.1f} s")
     camp = load_campaign(camp_dir)
-    from waneguide.features.schema import FEATURE_SCHEMA_VERSION
-
-    # the cache key carries the feature schema version: a new feature set never reuses old tables
-    fpath = cache / f"features_{camp.fingerprint}_v{FEATURE_SCHEMA_VERSION}.parquet"
-    if fpath.is_file():
-        feats = pd.read_parquet(fpath)
-    else:
-        t0 = time.perf_counter()
-        feats = campaign_features(fam, camp, progress=True, n_jobs=2)
-        feats.to_parquet(fpath, index=False)
-        print(f"  features in {time.perf_counter() - t0:.1f} s (not part of the training target)")
+    # the training pipeline's own feature cache: keyed by the campaign and family fingerprints, the
+    # feature schema version and the extractor's settings, so a change of any of them recomputes
+    t0 = time.perf_counter()
+    feats = cached_campaign_features(FeatureExtractor(fam), camp, cache / "features", progress=True, n_jobs=2)
+    print(f"  features in {time.perf_counter() - t0:.1f} s (cached after the first run; not part of the "
+          "training target)")
     cases = camp.cases.reset_index(drop=True)
     cols = [c for c in feature_columns() if c in feats.columns]
     groups = cases["specimen_id"].astype(str).to_numpy()

@@ -9,6 +9,8 @@ from __future__ import annotations
 from importlib.resources import files
 from pathlib import Path
 
+from waneguide.core.errors import MissingInputError
+
 __all__ = ["config_path"]
 
 
@@ -17,8 +19,6 @@ def config_path(*parts: str) -> Path:
     root = Path(str(files(__name__)))
     p = root.joinpath(*parts)
     if not p.exists():
-        from waneguide.core.errors import MissingInputError
-
         bundled = sorted(q.relative_to(root).as_posix() for q in root.rglob("*.toml"))
         raise MissingInputError(f"no bundled configuration file {'/'.join(parts)!r}; bundled: {bundled}")
     return p

@@ -10,11 +10,14 @@ Dispersion (Rayleigh-Lamb, free isotropic plate)
 Captures and files
     :class:`Capture`; readers/writers in :mod:`features.io` (:func:`read_capture`,
     :func:`write_capture`, :func:`read_captures`; formats in docs/capture-format.md).
+Mode windows
+    :func:`mode_windows`, :class:`ModeWindow` (:mod:`features.windows`: where S0 and A0 arrive).
 Quality gate
-    :func:`assess_quality`, :class:`QualityReport`, :class:`CaptureRejected`.
+    :func:`assess_quality`, :class:`QualityReport`, :class:`CaptureRejected`; the rule table
+    :data:`features.quality.QUALITY_RULES`.
 Feature extraction
     :class:`FeatureExtractor`, :func:`extract_feature_table`, :func:`feature_columns`,
-    :func:`describe_features`, :data:`FEATURE_SCHEMA_VERSION`, :func:`write_feature_table`,
+    :func:`feature_groups`, :func:`describe_features`, :data:`FEATURE_SCHEMA_VERSION`, :func:`write_feature_table`,
     :func:`read_feature_table`; building blocks in :mod:`features.signals`,
     :mod:`features.arrivals`, :mod:`features.compensation`, :mod:`features.temperature`.
 Conventional estimate
@@ -42,11 +45,13 @@ from waneguide.features.materials import (
     resolve_material,
 )
 
+from waneguide.core.lazy import lazy_exports
 from waneguide.features.capture import Capture
 
-# The feature-extraction names load on first use (PEP 562), so that importing
-# features.family or features.dispersion stays light (no pandas / joblib).
-_LAZY = {
+# The feature-extraction names load on first use (waneguide.core.lazy, PEP 562), so that
+# importing features.family or features.dispersion does not pull in the extractor's
+# libraries (joblib, pyarrow, h5py).
+__getattr__, __dir__ = lazy_exports(__name__, {
     "conventional_estimate": "conventional",
     "conventional_estimate_frame": "conventional",
     "FeatureExtractor": "extractor",
@@ -60,20 +65,12 @@ _LAZY = {
     "FEATURE_SCHEMA_VERSION": "schema",
     "describe_features": "schema",
     "feature_columns": "schema",
+    "feature_groups": "schema",
     "read_feature_table": "schema",
     "write_feature_table": "schema",
-}
-
-
-def __getattr__(name):
-    if name in _LAZY:
-        import importlib
-
-        value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module 'features' has no attribute {name!r}")
-
+    "ModeWindow": "windows",
+    "mode_windows": "windows",
+}, globals())
 
 __all__ = [
     "BUILTIN_MATERIALS",
@@ -102,6 +99,9 @@ __all__ = [
     "describe_features",
     "extract_feature_table",
     "feature_columns",
+    "feature_groups",
+    "mode_windows",
+    "ModeWindow",
     "read_capture",
     "read_captures",
     "read_feature_table",

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft as sfft
 
+from waneguide.core.errors import InputError
 from waneguide.features.signals import hilbert_envelope, parabolic_peak
 
 __all__ = [
@@ -85,7 +86,7 @@ def threshold_crossing_index(envelope: np.ndarray, fraction: float = 0.5, *, pea
     below the threshold before the peak.
     """
     if not 0.0 < fraction < 1.0:
-        raise ValueError(f"fraction must lie in (0, 1); got {fraction!r}.")
+        raise InputError(f"fraction must lie in (0, 1) (a share of the packet maximum); got {fraction!r}.")
     env = _rows(envelope)
     n, m = env.shape
     rows = np.arange(n)

@@ -35,6 +35,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft as sfft
 
+from waneguide.core.errors import InputError
 from waneguide.core.validation import validate_positive_scalar, validate_sample_rate_hz
 from waneguide.features.arrivals import threshold_crossing_index
 from waneguide.features.signals import parabolic_peak
@@ -45,7 +46,7 @@ __all__ = [
     "CompensationOperator",
     "PacketMeasure",
     "measure_packets",
-    "sharpest_index",
+    "candidate_thicknesses",
 ]
 
 
@@ -129,7 +130,8 @@ def wilcox_compensate(
     sel = (f_c >= lo) & (f_c <= hi)
     f_c, k_c = f_c[sel], k_c[sel]
     if f_c.size < 4 or np.any(np.diff(k_c) <= 0):
-        raise ValueError("the dispersion curve must have at least 4 points with k increasing in the band.")
+        raise InputError(f"the dispersion curve must have at least 4 points with k increasing in the band; got "
+                         f"{f_c.size} point(s) in {lo:g} to {hi:g} Hz. Give a curve that covers band_hz.")
     vg = np.gradient(2 * np.pi * f_c, k_c)
     n_fft = sfft.next_fast_len(int(oversample) * n, real=True)
     t = np.arange(n) / fs - pretrigger_s
@@ -262,13 +264,6 @@ def measure_packets(envelope: np.ndarray, distance_m: np.ndarray) -> PacketMeasu
     with np.errstate(divide="ignore", invalid="ignore"):
         sharp = peak**2 / (env * env).sum(-1)
     return PacketMeasure(distance_m[0] + ipk * dx, (right - left) * dx, peak, sharp)
-
-
-def sharpest_index(sharpness: np.ndarray) -> np.ndarray:
-    """Fractional index of the maximum over candidates (rows = captures), parabola-refined."""
-    s = np.atleast_2d(sharpness)
-    frac, _ = parabolic_peak(s, np.argmax(s, axis=-1))
-    return frac
 
 
 def candidate_thicknesses(nominal_m: float, lo: float = 0.5, hi: float = 1.15, step: float = 0.025) -> tuple[np.ndarray, int]:

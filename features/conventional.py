@@ -26,6 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from waneguide.core.errors import InputError
 from waneguide.features.dispersion import fundamental_dispersion
 from waneguide.features.family import Family
 from waneguide.features.temperature import ThermalModel
@@ -53,7 +54,7 @@ class ConventionalInversion:
 
     def __post_init__(self):
         if self.mode not in ("A0", "S0"):
-            raise ValueError(f"mode must be 'A0' or 'S0'; got {self.mode!r}.")
+            raise InputError(f"mode must be 'A0' or 'S0'; got {self.mode!r}.")
         fam = self.family
         self.thermal = ThermalModel(fam)
         d0 = fam.nominal_thickness_m
@@ -66,7 +67,7 @@ class ConventionalInversion:
         self.nominal_slowness = slow0
         ds = np.diff(self.slowness_table)
         if not (np.all(ds < 0) or np.all(ds > 0)):
-            raise ValueError(
+            raise InputError(
                 f"{self.mode} group slowness at {fam.excitation.centre_frequency_khz:g} kHz is not monotone in "
                 "thickness over the table; the single-mode inversion is ambiguous for this family."
             )
@@ -112,7 +113,8 @@ def conventional_estimate_frame(family: Family, features: pd.DataFrame, *, mode:
     col = shift_column or f"{mode.lower()}_shift_envelope_s"
     for c in (col, "capture_temperature_c", "baseline_temperature_c"):
         if c not in features.columns:
-            raise ValueError(f"feature table has no column {c!r}; build it with features.extractor.")
+            raise InputError(f"feature table has no column {c!r} (the conventional estimate reads {col!r} and "
+                             "the capture and baseline temperatures); build it with features.extractor.")
     inv = ConventionalInversion(family, mode)
     out = inv.invert(features[col].to_numpy(float), features["capture_temperature_c"].to_numpy(float),
                      features["baseline_temperature_c"].to_numpy(float))

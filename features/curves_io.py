@@ -4,10 +4,13 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+import matplotlib
 import numpy as np
+from matplotlib.figure import Figure
 
-from waneguide.core.validation import validate_positive_scalar
 from waneguide.core.atomic import atomic_path
+from waneguide.core.errors import InputError
+from waneguide.core.validation import validate_positive_scalar
 from waneguide.features.dispersion import DISPERSION_COLUMNS, DispersionCurves, lamb_dispersion
 from waneguide.features.materials import Material, resolve_material
 
@@ -32,7 +35,7 @@ def compute_dispersion_table(
 
     Raises
     ------
-    ValueError
+    InputError
         For a non-positive or non-finite thickness or fmax, fewer than 2 or more than
         20,000 points, or a temperature outside the material's validity range.
     """
@@ -40,14 +43,14 @@ def compute_dispersion_table(
     t_mm = validate_positive_scalar(thickness_mm, "--thickness-mm", unit="mm", hint="Give the plate thickness, e.g. 2.0.")
     f_khz = validate_positive_scalar(fmax_khz, "--fmax-khz", unit="kHz", hint="Give the highest frequency, e.g. 1000.")
     if f_khz * 1e-3 * t_mm > MAX_FD_MHZ_MM:
-        raise ValueError(f"--fmax-khz x --thickness-mm = {f_khz * 1e-3 * t_mm:g} MHz mm is above the {MAX_FD_MHZ_MM:g} "
+        raise InputError(f"--fmax-khz x --thickness-mm = {f_khz * 1e-3 * t_mm:g} MHz mm is above the {MAX_FD_MHZ_MM:g} "
                          "MHz mm traced here; give a lower --fmax-khz (e.g. 1000 for a 2 mm plate).")
     if isinstance(points, bool) or not isinstance(points, (int, np.integer)) or not 2 <= points <= MAX_POINTS:
-        raise ValueError(f"--points must be a whole number from 2 to {MAX_POINTS}; got {points!r}.")
+        raise InputError(f"--points must be a whole number from 2 to {MAX_POINTS}; got {points!r}.")
     thickness_m = t_mm * 1e-3
     if temperature_c is not None:
         if not math.isfinite(float(temperature_c)):
-            raise ValueError(f"--temperature-c must be a finite number; got {temperature_c!r}.")
+            raise InputError(f"--temperature-c must be a finite number; got {temperature_c!r}.")
         thickness_m *= mat.expansion_factor(temperature_c)
         mat = mat.at_temperature(temperature_c)
     fmax_hz = f_khz * 1e3
@@ -64,15 +67,14 @@ def write_dispersion_csv(curves: DispersionCurves, path: str | Path) -> Path:
 
 
 def plot_dispersion(curves: DispersionCurves, path: str | Path, *, thickness_index: int = 0) -> Path:
-    """PNG with phase and group velocity against frequency-thickness, every mode labelled."""
-    import matplotlib
+    """PNG with phase and group velocity against frequency-thickness, every mode labelled.
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+    Drawn on a bare :class:`matplotlib.figure.Figure` (no pyplot, no global backend change).
+    """
     frame = curves.to_frame(thickness_index)
-    fig, axes = plt.subplots(1, 2, figsize=(11, 4.5), sharex=True)
-    colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    fig = Figure(figsize=(11, 4.5))
+    axes = fig.subplots(1, 2, sharex=True)
+    colors = matplotlib.rcParams["axes.prop_cycle"].by_key()["color"]
     for i, (mode, g) in enumerate(frame.groupby("mode", sort=False)):
         style = "-" if mode.startswith("S") else "--"
         c = colors[i % len(colors)]
@@ -93,5 +95,4 @@ def plot_dispersion(curves: DispersionCurves, path: str | Path, *, thickness_ind
     fig.tight_layout()
     with atomic_path(path) as tmp:
         fig.savefig(tmp, dpi=110, format="png")
-    plt.close(fig)
     return Path(path)

@@ -6,78 +6,44 @@ allowed: the optimal baseline is chosen first); :meth:`FeatureExtractor.extract_
 takes whole arrays of a campaign chunk. Both run the same vectorised core on rows,
 so the same data give the same values (tests/test_extractor.py checks it).
 
-Per mode (S0, A0) the core gates the mode window (:func:`features.signals.mode_windows`),
-takes one FFT of the gated capture and baseline, and from those spectra computes the
-arrival estimators (:mod:`features.arrivals`), the energy and transmission ratios, and
-the Wilcox compensation for a grid of candidate thicknesses
+This module is the orchestration: quality gate, baseline matching and selection, blocks
+of rows (serial or joblib), the table. The arithmetic is in :mod:`features._extract_plan`
+(what is precomputed per record layout: gates, FFT sizes, bands, compensation operators)
+and :mod:`features._extract_core` (one step per feature group: per mode (S0, A0) the
+window of :func:`features.windows.mode_windows` is gated and transformed once, then the
+arrival estimators (:mod:`features.arrivals`), the energy and transmission ratios, the
+Wilcox compensation for a grid of candidate thicknesses
 (:class:`features.compensation.CompensationOperator`); then the baseline stretch and the
 thermal model (:mod:`features.temperature`) give the temperature features and the
-differential ones. Column names, units and meanings: :mod:`features.schema`.
+differential ones). Column names, units, meanings and groups: :mod:`features.schema`.
 """
 from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass
 from typing import Iterable, Sequence
 
 import numpy as np
 import pandas as pd
-import scipy.fft as sfft
 
-from waneguide.features.arrivals import envelope_peak_index, phase_delay_from_dft, threshold_crossing_index, xcorr_delay_from_spectra
+from waneguide.core.atomic import check_output_path
+from waneguide.core.errors import InputError
+from waneguide.core.runner import check_n_jobs, run_tasks
+from waneguide.features._extract_core import GROUPS, compute_features
+from waneguide.features._extract_plan import Plan, build_plan
 from waneguide.features.capture import Capture
-from waneguide.features.compensation import CompensationOperator, candidate_thicknesses, measure_packets
-from waneguide.features.dispersion import fundamental_dispersion
-from waneguide.features.family import Family
+from waneguide.features.family import Family, load_family
+from waneguide.features.io import read_captures
 from waneguide.features.quality import CaptureRejected, QualityReport, assess_quality, assess_quality_arrays
-from waneguide.features.schema import FEATURE_SCHEMA_VERSION, METADATA_COLUMNS, feature_columns
-from waneguide.features.signals import decimated_analytic, excitation_band_hz, mode_windows, parabolic_peak, tukey_gate
-from waneguide.features.temperature import ThermalModel, baseline_stretch, select_baseline
-from waneguide.features.thickness_gauge import BaselineThicknessGauge
+from waneguide.features.schema import FEATURE_SCHEMA_VERSION, METADATA_COLUMNS, feature_columns, write_feature_table
+from waneguide.features.temperature import ThermalModel, select_baseline
+from waneguide.features.windows import mode_windows
 
 __all__ = ["FeatureExtractor", "extract_feature_table", "build_feature_file", "FEATURE_GROUPS"]
 
-#: Groups reported by the benchmark (share of time per group).
-FEATURE_GROUPS = ("quality", "arrivals", "energy", "compensation", "temperature", "physics_check")
-_MODES = ("S0", "A0")
+#: Feature groups (features.schema), each computed in one step; timings are reported per group.
+FEATURE_GROUPS = tuple(GROUPS)
 _BLOCK_ROWS = 128
-_COMP_POINTS = 128
-_TAPER_FRACTION = 0.1
-
-
-@dataclass
-class _ModePlan:
-    mode: str
-    start: int
-    stop: int
-    gate: np.ndarray
-    n_fft: int
-    band_bins: np.ndarray
-    sub_bands: tuple[np.ndarray, np.ndarray, np.ndarray]
-    dft: np.ndarray
-    max_lag: int
-    operator: CompensationOperator
-    vg_candidates: np.ndarray
-    step_m: float
-
-
-@dataclass
-class _Plan:
-    sample_rate_hz: float
-    pretrigger_s: float
-    n_samples: int
-    modes: dict[str, _ModePlan]
-    sig_start: int
-    sig_stop: int
-    sig_gate: np.ndarray
-    sig_n_fft: int
-    max_stretch: float
-    burst_centre_s: float
-    peak_half_width: int
-    edge_half_width: int
-    stride: int
-    a0_gauge: BaselineThicknessGauge | None = None
 
 
 class FeatureExtractor:
@@ -106,241 +72,34 @@ class FeatureExtractor:
         self.thickness_grid = tuple(float(v) for v in thickness_grid)
         self.thermal = ThermalModel(family)
         self.windows = mode_windows(family)
-        self._plans: dict[tuple, _Plan] = {}
-        self._r = self.thermal.a0_over_s0_ratio
-        self._s0_coeff = self.thermal.relative_coefficient_per_k("S0")
+        self._plans: dict[tuple, Plan] = {}
 
     # ------------------------------------------------------------------ plans
-    def _plan(self, sample_rate_hz: float, pretrigger_s: float, n_samples: int) -> _Plan:
+    def _plan(self, sample_rate_hz: float, pretrigger_s: float, n_samples: int) -> Plan:
         key = (float(sample_rate_hz), float(pretrigger_s), int(n_samples))
         if key not in self._plans:
-            self._plans[key] = self._build_plan(*key)
+            self._plans[key] = build_plan(self.family, self.windows, self.thermal, *key,
+                                          thickness_grid=self.thickness_grid)
         return self._plans[key]
 
-    def _build_plan(self, fs: float, pre: float, n: int) -> _Plan:
-        fam = self.family
-        f0 = fam.excitation.centre_frequency_hz
-        cycles = fam.excitation.cycles
-        lo, hi = excitation_band_hz(fam)
-        mat = fam.build_material()
-        cand, j_nom = candidate_thicknesses(fam.nominal_thickness_m, *self.thickness_grid)
-        burst_centre = cycles / (2.0 * f0)
-        # envelope decimation D: the analytic signal is evaluated every D samples by folding
-        # its spectrum below fs / D (exact for content below fs / D; D keeps fs / D >= 8 f0)
-        stride = max(1, int(fs / (8.0 * f0)))
-        modes: dict[str, _ModePlan] = {}
-        for mode in _MODES:
-            w = self.windows[mode]
-            i0, i1 = w.indices(fs, pre, n)
-            length = i1 - i0
-            if length < 16:
-                raise ValueError(
-                    f"the {mode} window ({w.start_s * 1e6:.1f} to {w.stop_s * 1e6:.1f} us) holds only {length} "
-                    f"samples of a {n}-sample record at {fs:g} Hz; the record is too short for family {fam.name!r}."
-                )
-            gate = tukey_gate(length, 0, length, taper_samples=int(_TAPER_FRACTION * length))
-            n_fft = stride * sfft.next_fast_len(-(-2 * length // stride), real=True)
-            f_bins = np.arange(n_fft // 2 + 1) * fs / n_fft
-            band = np.flatnonzero((f_bins >= lo) & (f_bins <= hi))
-            half = 1.0 / cycles
-            subs = tuple(
-                np.flatnonzero((f_bins >= f0 * (1 + a * half)) & (f_bins < f0 * (1 + b * half)))
-                for a, b in ((-1.5, -0.5), (-0.5, 0.5), (0.5, 1.5))
-            )
-            t_seg0 = i0 / fs - pre
-            dft = np.exp(-2j * np.pi * (f0 / fs) * (i0 + np.arange(length)))
-            curves = fundamental_dispersion(mat, cand, np.r_[f_bins[band], f0])
-            m = curves.mode_index(mode)
-            k = curves.wavenumber_rad_m[:, m, :-1]
-            vg = curves.group_velocity_m_s[:, m, -1]
-            x = vg[j_nom] * (np.linspace(w.start_s, w.stop_s, _COMP_POINTS) - burst_centre)
-            op = CompensationOperator.build(
-                band_frequency_hz=f_bins[band], wavenumber_rad_m=k, thickness_m=cand, distance_m=x,
-                path_m=fam.path.spacing_m, segment_start_s=t_seg0, burst_centre_s=burst_centre,
-                nominal_index=j_nom,
-            )
-            modes[mode] = _ModePlan(
-                mode, i0, i1, gate, n_fft, band, subs, dft, max(1, length // 2), op, vg,
-                float(cand[1] - cand[0]),
-            )
-        s0, a0 = modes["S0"], modes["A0"]
-        f_a0 = np.arange(a0.n_fft // 2 + 1) * fs / a0.n_fft
-        gauge = BaselineThicknessGauge(fam, self.thermal, f_a0[a0.band_bins], a0.start / fs - pre)
-        sig_start, sig_stop = s0.start, max(s0.stop, a0.stop)
-        sig_len = sig_stop - sig_start
-        sig_gate = tukey_gate(sig_len, 0, sig_len, taper_samples=int(_TAPER_FRACTION * sig_len / 2))
-        env = fam.environment
-        max_stretch = 1.25 * abs(self._s0_coeff) * (env.max_temperature_c - env.min_temperature_c)
-        burst_samples = cycles / f0 * fs
-        return _Plan(fs, pre, n, modes, sig_start, sig_stop, sig_gate,
-                     sfft.next_fast_len(2 * sig_len, real=True), max(max_stretch, 0.004), burst_centre,
-                     max(1, int(burst_samples / 8 / stride)), max(0, int(burst_samples / 14 / stride)), stride,
-                     gauge)
-
     # ------------------------------------------------------------------ core
-    def _core(self, plan: _Plan, W: np.ndarray, B: np.ndarray, T: np.ndarray, Tb: np.ndarray,
+    def _core(self, plan: Plan, W: np.ndarray, B: np.ndarray, T: np.ndarray, Tb: np.ndarray,
               timings: dict | None = None) -> dict[str, np.ndarray]:
-        """All feature columns for rows of capture ``W`` and baseline ``B`` (same plan)."""
-        tick = time.perf_counter
-        tm = timings if timings is not None else {}
-
-        def add(group, t0):
-            tm[group] = tm.get(group, 0.0) + (tick() - t0)
-
-        fs, pre = plan.sample_rate_hz, plan.pretrigger_s
-        f0 = self.family.excitation.centre_frequency_hz
-        n_rows = W.shape[0]
-        out: dict[str, np.ndarray] = {}
-        t0 = tick()
-        e_rec_w = (W * W).sum(-1)
-        e_rec_b = (B * B).sum(-1)
-        add("energy", t0)
-        for mode, mp in plan.modes.items():
-            p = mode.lower()
-            t0 = tick()
-            xs = W[:, mp.start:mp.stop] * mp.gate
-            bs = B[:, mp.start:mp.stop] * mp.gate
-            XR = sfft.rfft(np.concatenate([xs, bs]), mp.n_fft, axis=-1)
-            X, R = XR[:n_rows], XR[n_rows:]
-            length = mp.stop - mp.start
-            D = plan.stride
-            env = np.abs(decimated_analytic(XR, mp.n_fft, D)[:, : -(-length // D)])
-            pk_idx, pk_val = envelope_peak_index(env, half_width=plan.peak_half_width)
-            ipk = np.clip(np.rint(pk_idx).astype(int), 0, env.shape[-1] - 1)
-            thr_idx = threshold_crossing_index(env, self.threshold_fraction, peak_index=ipk, peak_value=pk_val,
-                                               fit_half_width=plan.edge_half_width)
-            pk_idx, thr_idx = pk_idx * D, thr_idx * D
-            to_s = lambda i: (mp.start + i) / fs - pre  # noqa: E731
-            arr_env, base_env = to_s(pk_idx[:n_rows]), to_s(pk_idx[n_rows:])
-            arr_thr, base_thr = to_s(thr_idx[:n_rows]), to_s(thr_idx[n_rows:])
-            norm = np.sqrt((xs * xs).sum(-1) * (bs * bs).sum(-1))
-            d = xcorr_delay_from_spectra(X, R, mp.n_fft, max_lag=mp.max_lag, band_bins=mp.band_bins, norm=norm)
-            P = xs @ mp.dft
-            Q = bs @ mp.dft
-            ph = phase_delay_from_dft(P, Q, f0 / fs, near=d.phase_slope)
-            out[f"{p}_arrival_envelope_s"] = arr_env
-            out[f"{p}_arrival_threshold_s"] = arr_thr
-            out[f"{p}_arrival_xcorr_s"] = base_env + d.phase_slope / fs
-            out[f"{p}_arrival_phase_s"] = base_env + ph / fs
-            out[f"{p}_baseline_arrival_envelope_s"] = base_env
-            out[f"{p}_baseline_arrival_threshold_s"] = base_thr
-            out[f"{p}_shift_envelope_s"] = arr_env - base_env
-            out[f"{p}_shift_threshold_s"] = arr_thr - base_thr
-            out[f"{p}_shift_xcorr_s"] = d.parabolic / fs
-            out[f"{p}_shift_xcorr_phase_slope_s"] = d.phase_slope / fs
-            out[f"{p}_shift_phase_s"] = ph / fs
-            out[f"{p}_xcorr_coefficient"] = d.peak_correlation
-            add("arrivals", t0)
-            if mode == "A0" and plan.a0_gauge is not None:
-                t0 = tick()
-                # a baseline usually serves several captures: gauge each distinct (baseline, temperature) once
-                Rb = R[:, mp.band_bins]
-                Tb_rows = np.broadcast_to(np.asarray(Tb, dtype=float), (n_rows,))
-                key = np.concatenate([np.ascontiguousarray(Rb).view(np.float64).reshape(n_rows, -1),
-                                      Tb_rows[:, None]], axis=1)
-                _, first, inverse = np.unique(key, axis=0, return_index=True, return_inverse=True)
-                ratio = plan.a0_gauge.thickness_ratio(Rb[first], Tb_rows[first])
-                out["baseline_a0_thickness_ratio"] = ratio[np.asarray(inverse).ravel()]
-                add("physics_check", t0)
-
-            t0 = tick()
-            ex = (xs * xs).sum(-1)
-            eb = (bs * bs).sum(-1)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                out[f"{p}_energy_ratio_db"] = 10 * np.log10(ex / eb)
-                out[f"{p}_energy_fraction"] = ex / e_rec_w
-                out[f"{p}_peak_amplitude_v"] = pk_val[:n_rows]
-                pw = np.abs(XR) ** 2
-                for name, bins in zip(("low", "centre", "high"), mp.sub_bands):
-                    sx = pw[:n_rows, bins].sum(-1)
-                    sb = pw[n_rows:, bins].sum(-1)
-                    out[f"{p}_transmission_{name}_db"] = 10 * np.log10(sx / sb)
-            add("energy", t0)
-
-            t0 = tick()
-            op = mp.operator
-            U = XR[:, mp.band_bins]
-            foc = op.focus(U)
-            jf, fmax = parabolic_peak(foc, np.argmax(foc, axis=-1))
-            thick = op.thickness_m[0] + jf * mp.step_m
-            meas = measure_packets(np.abs(op.profile(U)), op.distance_m)
-            pos = meas.position_m
-            with np.errstate(divide="ignore", invalid="ignore"):
-                out[f"{p}_comp_position_m"] = pos[:n_rows]
-                out[f"{p}_comp_position_shift_m"] = pos[:n_rows] - pos[n_rows:]
-                out[f"{p}_comp_width_m"] = meas.width_m[:n_rows]
-                out[f"{p}_comp_width_ratio"] = meas.width_m[:n_rows] / meas.width_m[n_rows:]
-                out[f"{p}_comp_peak_ratio_db"] = 20 * np.log10(meas.peak[:n_rows] / meas.peak[n_rows:])
-                out[f"{p}_sharpest_thickness_m"] = thick[:n_rows]
-                out[f"{p}_comp_focus"] = fmax[:n_rows]
-                out[f"{p}_sharpest_thickness_ratio"] = thick[:n_rows] / thick[n_rows:]
-            add("compensation", t0)
-
-            t0 = tick()
-            thermal = self.thermal.thermal_shift_s(mode, T, Tb)
-            out[f"{p}_thermal_shift_s"] = thermal
-            # the thermal model predicts group delays: compare with the envelope (group) shift
-            out[f"{p}_shift_corrected_s"] = out[f"{p}_shift_envelope_s"] - thermal
-            add("temperature", t0)
-
-        t0 = tick()
-        st = baseline_stretch(W, B, sample_rate_hz=fs, pretrigger_s=pre, start=plan.sig_start,
-                              stop=plan.sig_stop, max_stretch=plan.max_stretch, origin_s=plan.burst_centre_s,
-                              stride=plan.stride)
-        xw = W[:, plan.sig_start:plan.sig_stop]
-        for mode, mp in plan.modes.items():
-            a, b = mp.start - plan.sig_start, mp.stop - plan.sig_start
-            xm = xw[:, a:b] * mp.gate
-            bm = st.stretched_baseline[:, a:b] * mp.gate
-            with np.errstate(divide="ignore", invalid="ignore"):
-                rho = (xm * bm).sum(-1) / np.sqrt((xm * xm).sum(-1) * (bm * bm).sum(-1))
-            out[f"{mode.lower()}_stretch_residual"] = 1.0 - rho**2
-        dT = T - Tb
-        out["capture_temperature_c"] = T.copy()
-        out["baseline_temperature_c"] = Tb.copy()
-        out["delta_temperature_k"] = dT
-        out["stretch_factor"] = st.factor
-        out["stretch_excess"] = (st.factor - 1.0) - self._s0_coeff * dT
-        out["stretch_residual"] = st.residual
-        out["unstretched_residual"] = st.unstretched_residual
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out["s0_stretch_factor"] = 1.0 + out["s0_shift_envelope_s"] / (
-                out["s0_baseline_arrival_envelope_s"] - plan.burst_centre_s)
-            out["a0_s0_differential_shift_s"] = out["a0_shift_envelope_s"] - self._r * out["s0_shift_envelope_s"]
-            out["a0_s0_differential_energy_db"] = out["a0_energy_ratio_db"] - out["s0_energy_ratio_db"]
-            out["a0_s0_differential_thickness_ratio"] = (
-                out["a0_sharpest_thickness_ratio"] / out["s0_sharpest_thickness_ratio"]
-            )
-            out["record_energy_ratio_db"] = 10 * np.log10(e_rec_w / e_rec_b)
-        add("temperature", t0)
-
-        t0 = tick()
-        seg = xw * plan.sig_gate
-        spec = np.abs(sfft.rfft(seg, plan.sig_n_fft, axis=-1))
-        spec[:, 0] = 0.0
-        kf, _ = parabolic_peak(spec, np.argmax(spec, axis=-1))
-        out["capture_peak_frequency_hz"] = kf * fs / plan.sig_n_fft
-        out["baseline_s0_arrival_s"] = out["s0_baseline_arrival_envelope_s"].copy()
-        out["sample_rate_hz"] = np.full(n_rows, fs)
-        add("physics_check", t0)
-        return out
+        """All core feature columns for rows of capture ``W`` and baseline ``B`` (same plan)."""
+        return compute_features(plan, self.thermal, W, B, T, Tb, threshold_fraction=self.threshold_fraction,
+                                timings=timings)
 
     def _run_core(self, plan, W, B, T, Tb, n_jobs=1, timings=None):
         n_rows = W.shape[0]
         blocks = [slice(s, min(s + _BLOCK_ROWS, n_rows)) for s in range(0, n_rows, _BLOCK_ROWS)]
-        if n_jobs == 1 or len(blocks) == 1:
-            parts = [self._core(plan, W[s], B[s], T[s], Tb[s], timings) for s in blocks]
-        else:
-            from joblib import Parallel, delayed
-
-            res = Parallel(n_jobs=n_jobs, prefer="threads")(
-                delayed(_core_job)(self, plan, W[s], B[s], T[s], Tb[s]) for s in blocks
-            )
-            parts = [r[0] for r in res]
-            if timings is not None:
-                for _, tm in res:
-                    for k, v in tm.items():
-                        timings[k] = timings.get(k, 0.0) + v
+        # numpy blocks release the GIL: threads, through the project's one runner
+        tasks = {i: (plan, W[s], B[s], T[s], Tb[s]) for i, s in enumerate(blocks)}
+        res = dict(run_tasks(_core_job, tasks, n_jobs=n_jobs, shared={"extractor": self}, prefer="threads"))
+        parts = [res[i][0] for i in range(len(blocks))]
+        if timings is not None:
+            for i in range(len(blocks)):
+                for k, v in res[i][1].items():
+                    timings[k] = timings.get(k, 0.0) + v
         return {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
 
     # ------------------------------------------------------------------ batch door
@@ -381,7 +140,7 @@ class FeatureExtractor:
             Filled with seconds per feature group (for the benchmark).
         """
         if on_reject not in ("raise", "nan"):
-            raise ValueError(f"on_reject must be 'raise' or 'nan'; got {on_reject!r}.")
+            raise InputError(f"on_reject must be 'raise' or 'nan'; got {on_reject!r}.")
         W = np.atleast_2d(np.asarray(waveforms_v, dtype=np.float64))
         B = np.asarray(baselines_v, dtype=np.float64)
         if B.ndim == 1:
@@ -406,11 +165,11 @@ class FeatureExtractor:
         if bad.any() and on_reject == "raise":
             i = int(np.flatnonzero(bad)[0])
             (reps[i] if reps[i].fatal else breps[i]).raise_if_fatal()
-        plan = self._plan(fs, pre, W.shape[1])
         good = np.flatnonzero(~bad)
         cols = feature_columns()
         feats = {c: np.full(n_rows, np.nan) for c in cols}
         if good.size:
+            plan = self._plan(fs, pre, W.shape[1])
             sub = good if bad.any() else slice(None)
             vals = self._run_core(plan, W[sub], B[sub], T[sub], Tb[sub], n_jobs=n_jobs, timings=tm)
             for c in cols:
@@ -442,7 +201,7 @@ class FeatureExtractor:
     # ------------------------------------------------------------------ capture door
     def _check_pair(self, capture: Capture, baseline: Capture) -> None:
         if baseline.path_id != capture.path_id:
-            raise ValueError(
+            raise InputError(
                 f"baseline {baseline.source or '(in memory)'} is from path {baseline.path_id!r} but capture "
                 f"{capture.source or '(in memory)'} is from path {capture.path_id!r}; a baseline must come from "
                 "the same transducer path. Give baselines recorded on that path."
@@ -452,7 +211,7 @@ class FeatureExtractor:
         fs = baseline.sample_rate_hz
         if not math.isclose(fs, capture.sample_rate_hz, rel_tol=1e-6) or baseline.n_samples != capture.n_samples \
                 or abs(baseline.pretrigger_s - capture.pretrigger_s) > 1e-2 / fs:
-            raise ValueError(
+            raise InputError(
                 f"baseline {baseline.source or '(in memory)'} ({baseline.n_samples} samples at "
                 f"{baseline.sample_rate_hz:g} Hz, pretrigger {baseline.pretrigger_s:g} s) does not match capture "
                 f"{capture.source or '(in memory)'} ({capture.n_samples} samples at {capture.sample_rate_hz:g} Hz, "
@@ -465,7 +224,7 @@ class FeatureExtractor:
             baselines = [baselines]
         baselines = list(baselines)
         if not baselines:
-            raise ValueError(
+            raise InputError(
                 f"no baseline for capture {capture.source or '(in memory)'} on path {capture.path_id!r}; "
                 "give at least one baseline recorded on that path."
             )
@@ -495,7 +254,7 @@ class FeatureExtractor:
         ------
         CaptureRejected
             When the capture or a baseline fails a fatal quality check.
-        ValueError
+        InputError
             When a baseline is from another path or recorded with other settings.
         """
         return self._extract_many([capture], [baselines]).iloc[0].to_dict()
@@ -548,7 +307,7 @@ class FeatureExtractor:
         return self._frame(meta, feats)
 
 
-def _core_job(extractor, plan, W, B, T, Tb):
+def _core_job(plan, W, B, T, Tb, *, extractor):
     tm: dict = {}
     return extractor._core(plan, W, B, T, Tb, tm), tm
 
@@ -580,17 +339,17 @@ def extract_feature_table(
     lists the paths the baselines cover.
     """
     if on_reject not in ("raise", "skip", "nan"):
-        raise ValueError(f"on_reject must be 'raise', 'skip' or 'nan'; got {on_reject!r}.")
+        raise InputError(f"on_reject must be 'raise', 'skip' or 'nan'; got {on_reject!r}.")
     captures = list(captures)
     if not captures:
-        raise ValueError("no captures given.")
+        raise InputError("no captures given: name at least one capture file or folder.")
     by_path: dict[str, list[Capture]] = {}
     for b in baselines:
         by_path.setdefault(b.path_id, []).append(b)
     per = []
     for c in captures:
         if c.path_id not in by_path:
-            raise ValueError(
+            raise InputError(
                 f"capture {c.source or '(in memory)'} is from path {c.path_id!r}, but no baseline is from that "
                 f"path (baselines cover: {', '.join(sorted(map(repr, by_path))) or 'none'}). Add a baseline "
                 "recorded on that path when the metal was sound."
@@ -608,13 +367,7 @@ def extract_feature_table(
 def build_feature_file(family_path, captures, baselines, out_path, *, n_jobs: int = 1,
                        on_reject: str = "raise") -> pd.DataFrame:
     """Library side of ``waneguide features``: read, extract, write Parquet atomically."""
-    from waneguide.core.atomic import check_output_path
-    from waneguide.features.family import load_family
-    from waneguide.features.io import read_captures
-    from waneguide.features.schema import write_feature_table
-
-    if isinstance(n_jobs, bool) or int(n_jobs) != n_jobs or n_jobs == 0 or n_jobs < -1:
-        raise ValueError(f"n_jobs (--jobs) must be a positive integer (or -1 for all cores); got {n_jobs!r}.")
+    n_jobs = check_n_jobs(n_jobs)
     check_output_path(out_path, "feature table (--out)")
     family = load_family(family_path)
     caps = read_captures(captures)

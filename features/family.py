@@ -39,11 +39,14 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from waneguide.core.errors import InputError, MissingInputError
 from waneguide.features.materials import Material, get_material, material_from_mapping
+from waneguide.features.windows import mode_windows, samples_needed
 
 __all__ = [
     "Family",
     "TransducerSpec",
+    "LimitsSpec",
     "load_family",
     "family_from_mapping",
     "FAMILY_SCHEMA_VERSION",
@@ -264,6 +267,15 @@ class DomainSpec(_Strict):
         return self
 
 
+class LimitsSpec(_Strict):
+    """Operating limits of the family (not physics: left out of the fingerprint)."""
+
+    wall_loss_limit_pct: float | None = Field(
+        default=None, gt=0.0, lt=100.0,
+        description="limit on the maximum wall loss [% of nominal thickness] for the exceedance probability; "
+                    "the default of `score --limit-pct` and `audit --limit-pct`")
+
+
 class Family(_Strict):
     """A validated stiffener-family definition (see module docstring)."""
 
@@ -277,6 +289,7 @@ class Family(_Strict):
     acquisition: AcquisitionSpec
     environment: EnvironmentSpec = EnvironmentSpec()
     domain: DomainSpec = DomainSpec()
+    limits: LimitsSpec = LimitsSpec()
 
     @model_validator(mode="after")
     def _consistency(self):
@@ -317,7 +330,28 @@ class Family(_Strict):
         acq = self.acquisition
         if acq.amplitude_units == "counts" and acq.counts_scale_v is None:
             raise ValueError("acquisition.counts_scale_v is required when amplitude_units = 'counts'")
+        self._check_record_holds_windows()
         return self
+
+    def _check_record_holds_windows(self) -> None:
+        """acquisition.record_length must reach the end of every mode window (features.windows)."""
+        acq = self.acquisition
+        needed = samples_needed(self)
+        mode = max(needed, key=needed.get)
+        need = needed[mode]
+        if acq.record_length >= need:
+            return
+        w = mode_windows(self)[mode]
+        suggest = 1 << (need - 1).bit_length()
+        raise ValueError(
+            f"acquisition.record_length = {acq.record_length} samples cannot hold the {mode} window: it ends "
+            f"{w.stop_s * 1e6:.1f} us after the trigger (path {self.path.transducer_spacing_mm:g} mm at the "
+            f"slowest {mode} group velocity {w.slowest_m_s:.0f} m/s over the excitation band and the thinning "
+            f"domain, plus the {self.excitation.cycles:g}-cycle burst), which with the "
+            f"{acq.pretrigger_us:g} us pre-trigger at {acq.sample_rate_mhz:g} MHz is sample {need}. "
+            f"The record needs at least {need} samples: set record_length = {suggest} (or any value >= {need}), "
+            "or shorten the path."
+        )
 
     # -- conveniences ------------------------------------------------------------
     @property
@@ -352,6 +386,7 @@ class Family(_Strict):
         data = self.model_dump(mode="json")
         data["material"] = {"resolved": self.build_material().as_dict()}
         data["family"].pop("description", None)
+        data.pop("limits", None)  # an operating setting: changing it keeps trained models valid
         return data
 
     @property
@@ -367,13 +402,18 @@ class Family(_Strict):
 def _format_errors(exc: ValidationError, where: str) -> str:
     lines = []
     for err in exc.errors():
-        loc = ".".join(str(x) for x in err["loc"]) or "(top level)"
+        loc = ".".join(str(x) for x in err["loc"])
         msg = err["msg"]
         if err["type"] == "extra_forbidden":
             msg = "unknown key (not part of the family schema)"
+        if err["type"] == "value_error":
+            msg = msg.removeprefix("Value error, ")
         got = err.get("input")
         got_txt = "" if isinstance(got, dict) else f"; got {got!r}"
-        lines.append(f"{loc}: {msg}{got_txt}")
+        if not loc and err["type"] == "value_error":
+            lines.append(msg)  # a check across sections: the message names its fields itself
+        else:
+            lines.append(f"{loc or '(top level)'}: {msg}{got_txt}")
     # one line (the CLI prints one line per error); several problems are listed with "; "
     if len(lines) == 1:
         return f"{where}: {lines[0]}"
@@ -381,26 +421,42 @@ def _format_errors(exc: ValidationError, where: str) -> str:
 
 
 def family_from_mapping(data: dict[str, Any], *, where: str = "family") -> Family:
-    """Validate a parsed family definition; errors name the field, the value and the rule."""
+    """Validate a parsed family definition; errors name the field, the value and the rule.
+
+    Raises
+    ------
+    InputError
+        Naming ``where`` (the file), every field at fault, the value received and the rule.
+    """
     try:
         return Family.model_validate(data)
     except ValidationError as exc:
-        raise ValueError(_format_errors(exc, where)) from None
+        raise InputError(_format_errors(exc, where)) from None
 
 
 def load_family(path: str | Path) -> Family:
-    """Read and validate a family TOML file."""
+    """Read and validate a family TOML file.
+
+    Raises
+    ------
+    MissingInputError
+        The file does not exist.
+    InputError
+        It is not UTF-8 TOML, or breaks the family schema.
+    """
     p = Path(path)
     try:
         with p.open("rb") as fh:
             data = tomllib.load(fh)
     except FileNotFoundError:
-        raise ValueError(f"family file {str(p)!r} does not exist.") from None
+        raise MissingInputError(f"family file {str(p)!r} does not exist; give the path of the family's .toml file "
+                                "(the demo families are in configs/families/).") from None
     except tomllib.TOMLDecodeError as exc:
-        raise ValueError(f"family file {str(p)!r} is not valid TOML: {exc}.") from None
+        raise InputError(f"family file {str(p)!r} is not valid TOML: {exc}. Fix the line named, or start from "
+                         "a demo family in configs/families/.") from None
     except (IsADirectoryError, NotADirectoryError):
-        raise ValueError(f"family file {str(p)!r} is a folder or lies under a file; give the family's .toml file.") from None
+        raise InputError(f"family file {str(p)!r} is a folder or lies under a file; give the family's .toml file.") from None
     except UnicodeDecodeError as exc:
-        raise ValueError(f"family file {str(p)!r} is not UTF-8 text ({exc.reason} at byte {exc.start}); "
+        raise InputError(f"family file {str(p)!r} is not UTF-8 text ({exc.reason} at byte {exc.start}); "
                          "give the family's .toml file.") from None
     return family_from_mapping(data, where=str(p))

@@ -20,6 +20,8 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Mapping
 
+from waneguide.core.errors import InputError, MissingInputError
+
 __all__ = [
     "Material",
     "BUILTIN_MATERIALS",
@@ -78,23 +80,23 @@ class Material:
         for attr in ("youngs_modulus_pa", "density_kg_m3"):
             value = getattr(self, attr)
             if not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
-                raise ValueError(f"{where}: {attr} must be a positive finite number; got {value!r}.")
+                raise InputError(f"{where}: {attr} must be a positive finite number; got {value!r}.")
         nu = self.poisson_ratio
         if not isinstance(nu, (int, float)) or not math.isfinite(nu) or not 0.0 < nu < 0.5:
-            raise ValueError(
+            raise InputError(
                 f"{where}: poisson_ratio must lie in the open interval (0, 0.5); got {nu!r}."
             )
         for attr in ("dE_dT_pa_per_k", "thermal_expansion_per_k", "reference_temperature_c"):
             value = getattr(self, attr)
             if not isinstance(value, (int, float)) or not math.isfinite(value):
-                raise ValueError(f"{where}: {attr} must be a finite number; got {value!r}.")
+                raise InputError(f"{where}: {attr} must be a finite number; got {value!r}.")
         if not self.min_temperature_c < self.max_temperature_c:
-            raise ValueError(
+            raise InputError(
                 f"{where}: min_temperature_c ({self.min_temperature_c}) must be below "
                 f"max_temperature_c ({self.max_temperature_c})."
             )
         if abs(self.thermal_expansion_per_k) > 1e-3:
-            raise ValueError(
+            raise InputError(
                 f"{where}: thermal_expansion_per_k must be given per kelvin (about 2.3e-5 for "
                 f"aluminium); got {self.thermal_expansion_per_k!r}."
             )
@@ -106,9 +108,9 @@ class Material:
         """Build a material from bulk longitudinal and transverse velocities [m/s]."""
         for label, value in (("cl_m_s", cl_m_s), ("ct_m_s", ct_m_s), ("density_kg_m3", density_kg_m3)):
             if not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
-                raise ValueError(f"material {name!r}: {label} must be a positive finite number; got {value!r}.")
+                raise InputError(f"material {name!r}: {label} must be a positive finite number; got {value!r}.")
         if not cl_m_s > math.sqrt(2.0) * ct_m_s:
-            raise ValueError(
+            raise InputError(
                 f"material {name!r}: cl_m_s must exceed sqrt(2)*ct_m_s = {math.sqrt(2.0) * ct_m_s:.1f} m/s "
                 f"for a positive Poisson's ratio; got cl_m_s={cl_m_s!r}, ct_m_s={ct_m_s!r}."
             )
@@ -140,12 +142,13 @@ class Material:
 
     # -- temperature -------------------------------------------------------------
     def check_temperature(self, temperature_c: float) -> float:
-        """Return ``temperature_c`` if inside the validity range, else raise ValueError."""
+        """Return ``temperature_c`` if inside the validity range, else raise :class:`InputError`."""
         t = float(temperature_c)
         if not math.isfinite(t) or not self.min_temperature_c <= t <= self.max_temperature_c:
-            raise ValueError(
+            raise InputError(
                 f"temperature_c={temperature_c!r} is outside the validity range of material "
-                f"{self.name!r} ({self.min_temperature_c:g} to {self.max_temperature_c:g} degC)."
+                f"{self.name!r} ({self.min_temperature_c:g} to {self.max_temperature_c:g} degC); give a temperature "
+                "inside it, or a material whose temperature model covers it."
             )
         return t
 
@@ -164,7 +167,8 @@ class Material:
         dt = t - self.reference_temperature_c
         e = self.youngs_modulus_pa + self.dE_dT_pa_per_k * dt
         if e <= 0:
-            raise ValueError(f"material {self.name!r}: E becomes non-positive at {t} degC.")
+            raise InputError(f"material {self.name!r}: E becomes non-positive at {t} degC (dE_dT_pa_per_k = "
+                             f"{self.dE_dT_pa_per_k:g}); check dE/dT or narrow the temperature range.")
         rho = self.density_kg_m3 / (1.0 + self.thermal_expansion_per_k * dt) ** 3
         return replace(self, youngs_modulus_pa=e, density_kg_m3=rho, temperature_c=t)
 
@@ -233,7 +237,7 @@ def get_material(name: str) -> Material:
     try:
         return BUILTIN_MATERIALS[key]
     except KeyError:
-        raise ValueError(
+        raise InputError(
             f"unknown material {name!r}; known materials: {', '.join(builtin_material_names())}, "
             "or give the path of a material TOML file."
         ) from None
@@ -255,32 +259,34 @@ def material_from_mapping(data: Mapping[str, Any], *, where: str = "material") -
     """
     unknown = sorted(set(data) - _ALLOWED_KEYS)
     if unknown:
-        raise ValueError(f"{where}: unknown key(s) {unknown}; accepted keys: {sorted(_ALLOWED_KEYS)}.")
+        raise InputError(f"{where}: unknown key(s) {unknown}; accepted keys: {sorted(_ALLOWED_KEYS)}. "
+                         "Remove or rename them.")
     d = dict(data)
     name = str(d.pop("name", "user-material"))
     if "density_kg_m3" not in d:
-        raise ValueError(f"{where}: density_kg_m3 is required.")
+        raise InputError(f"{where}: density_kg_m3 is required (with an elastic pair); add e.g. density_kg_m3 = 2700.")
     if "youngs_modulus_gpa" in d:
         if "youngs_modulus_pa" in d:
-            raise ValueError(f"{where}: give youngs_modulus_pa or youngs_modulus_gpa, not both.")
+            raise InputError(f"{where}: give youngs_modulus_pa or youngs_modulus_gpa, not both.")
         d["youngs_modulus_pa"] = float(d.pop("youngs_modulus_gpa")) * 1e9
     if "dE_dT_mpa_per_k" in d:
         if "dE_dT_pa_per_k" in d:
-            raise ValueError(f"{where}: give dE_dT_pa_per_k or dE_dT_mpa_per_k, not both.")
+            raise InputError(f"{where}: give dE_dT_pa_per_k or dE_dT_mpa_per_k, not both.")
         d["dE_dT_pa_per_k"] = float(d.pop("dE_dT_mpa_per_k")) * 1e6
     has_e = "youngs_modulus_pa" in d or "poisson_ratio" in d
     has_c = "cl_m_s" in d or "ct_m_s" in d
     if has_e and has_c:
-        raise ValueError(f"{where}: give either (youngs_modulus, poisson_ratio) or (cl_m_s, ct_m_s), not both.")
+        raise InputError(f"{where}: give either (youngs_modulus, poisson_ratio) or (cl_m_s, ct_m_s), not both.")
     for key, value in d.items():
         if key != "source" and not isinstance(value, (int, float)):
-            raise ValueError(f"{where}: {key} must be a number; got {value!r}.")
+            raise InputError(f"{where}: {key} must be a number; got {value!r}. Write it without quotes or units.")
     if has_c:
         if not ("cl_m_s" in d and "ct_m_s" in d):
-            raise ValueError(f"{where}: cl_m_s and ct_m_s must be given together.")
+            raise InputError(f"{where}: cl_m_s and ct_m_s must be given together; got only "
+                             f"{'cl_m_s' if 'cl_m_s' in d else 'ct_m_s'}. Add the other one.")
         return Material.from_velocities(name, **d)
     if not ("youngs_modulus_pa" in d and "poisson_ratio" in d):
-        raise ValueError(
+        raise InputError(
             f"{where}: needs youngs_modulus_pa (or youngs_modulus_gpa) with poisson_ratio, "
             "or cl_m_s with ct_m_s."
         )
@@ -294,17 +300,20 @@ def load_material(path: str | Path) -> Material:
         with p.open("rb") as fh:
             data = tomllib.load(fh)
     except FileNotFoundError:
-        raise ValueError(f"material file {str(p)!r} does not exist.") from None
+        raise MissingInputError(f"material file {str(p)!r} does not exist; give the path of a material .toml file "
+                                "or a built-in name (see `waneguide materials`).") from None
     except tomllib.TOMLDecodeError as exc:
-        raise ValueError(f"material file {str(p)!r} is not valid TOML: {exc}.") from None
+        raise InputError(f"material file {str(p)!r} is not valid TOML: {exc}. Fix the line named "
+                         "(configs/materials/example_user_alloy.toml shows the layout).") from None
     except (IsADirectoryError, NotADirectoryError):
-        raise ValueError(f"material file {str(p)!r} is a folder or lies under a file; give a material .toml file "
+        raise InputError(f"material file {str(p)!r} is a folder or lies under a file; give a material .toml file "
                          "or a built-in name (see `waneguide materials`).") from None
     except UnicodeDecodeError as exc:
-        raise ValueError(f"material file {str(p)!r} is not UTF-8 text ({exc.reason} at byte {exc.start}); "
+        raise InputError(f"material file {str(p)!r} is not UTF-8 text ({exc.reason} at byte {exc.start}); "
                          "give a material .toml file.") from None
     if set(data) != {"material"}:
-        raise ValueError(f"material file {str(p)!r} must hold exactly one [material] table; got {sorted(data)}.")
+        raise InputError(f"material file {str(p)!r} must hold exactly one [material] table; got {sorted(data)}. "
+                         "Put every key under [material].")
     return material_from_mapping(data["material"], where=f"{p}: [material]")
 
 

@@ -7,6 +7,11 @@ name, unit or meaning bumps :data:`FEATURE_SCHEMA_VERSION`; the version travels 
 
 Time features are seconds after the trigger (t = 0 at the start of the excitation
 burst); shifts are capture minus baseline (positive: the capture is later).
+
+Every column belongs to one feature group (``arrivals``, ``energy``, ``compensation``,
+``physics_check``, ``temperature``, ``differential``, ``quality``); :func:`feature_groups`
+lists each group's columns. This table is the one declaration: the extractor computes
+each group in one step and checks that it produced exactly the group's columns.
 """
 from __future__ import annotations
 
@@ -15,14 +20,18 @@ import os
 from pathlib import Path
 
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from waneguide.core.atomic import atomic_path
+from waneguide.core.errors import InputError, MissingInputError
 
 __all__ = [
     "FEATURE_SCHEMA_VERSION",
     "MODES",
     "METADATA_COLUMNS",
     "feature_columns",
+    "feature_groups",
     "describe_features",
     "write_feature_table",
     "read_feature_table",
@@ -95,6 +104,17 @@ def feature_columns() -> list[str]:
     return per_mode + [name for name, *_ in _GLOBAL]
 
 
+def feature_groups() -> dict[str, tuple[str, ...]]:
+    """Columns of each feature group, in table order (groups in order of first appearance)."""
+    groups: dict[str, list[str]] = {}
+    for m in MODES:
+        for suffix, _, group, _ in _PER_MODE:
+            groups.setdefault(group, []).append(f"{m}_{suffix}")
+    for name, _, group, _ in _GLOBAL:
+        groups.setdefault(group, []).append(name)
+    return {g: tuple(cols) for g, cols in groups.items()}
+
+
 def describe_features() -> pd.DataFrame:
     """One row per feature column: ``name, unit, group, description``."""
     rows = [
@@ -106,14 +126,15 @@ def describe_features() -> pd.DataFrame:
 def _check_table(df: pd.DataFrame) -> None:
     missing = [c for c in (*METADATA_COLUMNS, *feature_columns()) if c not in df.columns]
     if missing:
-        raise ValueError(f"feature table lacks column(s) {missing[:5]}{' ...' if len(missing) > 5 else ''}.")
+        raise InputError(
+            f"feature table lacks column(s) {missing[:5]}{' ...' if len(missing) > 5 else ''}: a feature table "
+            f"holds the metadata columns and every column of feature schema v{FEATURE_SCHEMA_VERSION}. "
+            "Build it with features.extractor (waneguide features)."
+        )
 
 
 def write_feature_table(df: pd.DataFrame, path: str | os.PathLike, *, extra_metadata: dict | None = None) -> Path:
     """Write the table to Parquet atomically, with the schema version in the file metadata."""
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
     _check_table(df)
     table = pa.Table.from_pandas(df, preserve_index=False)
     meta = dict(table.schema.metadata or {})
@@ -129,19 +150,23 @@ def write_feature_table(df: pd.DataFrame, path: str | os.PathLike, *, extra_meta
 
 def read_feature_table(path: str | os.PathLike) -> pd.DataFrame:
     """Read a feature table; refuses files written under another schema version."""
-    import pyarrow.parquet as pq
-
     p = Path(path)
     if not p.is_file():
-        raise FileNotFoundError(f"feature table {str(p)!r} does not exist.")
-    table = pq.read_table(p)
+        raise MissingInputError(f"feature table {str(p)!r} does not exist; give a Parquet file written by "
+                                "`waneguide features`.")
+    try:
+        table = pq.read_table(p)
+    except (pa.ArrowException, OSError) as exc:
+        raise InputError(f"{p}: not a readable Parquet file ({exc}); give a feature table written by "
+                         "`waneguide features`.") from None
     raw = (table.schema.metadata or {}).get(b"waneguide")
     if raw is None:
-        raise ValueError(f"{p}: not a waneguide feature table (no 'waneguide' Parquet metadata).")
+        raise InputError(f"{p}: not a waneguide feature table (no 'waneguide' Parquet metadata); give a table "
+                         "written by `waneguide features`.")
     info = json.loads(raw)
     version = info.get("feature_schema_version")
     if version != FEATURE_SCHEMA_VERSION:
-        raise ValueError(
+        raise InputError(
             f"{p}: feature schema version {version} is not the version this tool writes "
             f"({FEATURE_SCHEMA_VERSION}); re-run `waneguide features` on the captures."
         )

@@ -13,7 +13,10 @@ spectrum U(w) over the excitation band by least squares with three templates
     S0 far-end echo  G(w) exp(-i k_S0(w; d) (L + 2 d_far))
 
 each with a free complex amplitude (coupling, excitability, reflection coefficient),
-G = tone-burst spectrum x disc resonance^2 (family transducer), k from Rayleigh-Lamb.
+G = tone-burst spectrum x disc resonance^2 x disc aperture^2 of the mode (the one
+excitation and transducer model, :class:`waneguide.features.excitation.ExcitationModel`,
+as the simulator uses it: aperture at nominal thickness and reference temperature),
+k from Rayleigh-Lamb.
 The gauge is the candidate whose templates capture the largest fraction of the band
 energy (parabola-refined), as a fraction of the nominal thickness.
 
@@ -27,16 +30,12 @@ from __future__ import annotations
 
 import numpy as np
 
+from waneguide.core.errors import InputError
 from waneguide.features.dispersion import fundamental_dispersion
-from waneguide.features.signals import parabolic_peak, tone_burst
+from waneguide.features.excitation import ExcitationModel
+from waneguide.features.signals import parabolic_peak
 
 __all__ = ["BaselineThicknessGauge"]
-
-
-def _disc_response(f_hz, resonance_hz, quality_factor):
-    """Second-order resonance 1 / (1 + i Q (f/f_r - f_r/f)) of a bonded disc."""
-    f = np.maximum(np.asarray(f_hz, dtype=float), 1e-3)
-    return 1.0 / (1.0 + 1j * quality_factor * (f / resonance_hz - resonance_hz / f))
 
 
 class BaselineThicknessGauge:
@@ -61,14 +60,12 @@ class BaselineThicknessGauge:
         env = family.environment
         self.temperatures_c = np.arange(env.min_temperature_c - temperature_step_k,
                                         env.max_temperature_c + 1.5 * temperature_step_k, temperature_step_k)
-        exc, trd = family.excitation, family.transducer
-        fc = exc.centre_frequency_hz
-        fr = trd.resonance_khz * 1e3 if trd.resonance_khz is not None else fc
-        fs = family.acquisition.sample_rate_hz
-        burst = tone_burst(fc, exc.cycles, fs, window=exc.window)
+        em = ExcitationModel.from_family(family)
         w = 2 * np.pi * fb
-        X = np.exp(-1j * np.outer(w, np.arange(burst.size) / fs)) @ burst
-        G = X * _disc_response(fb, fr, trd.quality_factor) ** 2 * np.exp(1j * w * segment_start_s)
+        mat = family.build_material()
+        k_nom = fundamental_dispersion(mat, family.nominal_thickness_m, fb)
+        G = {m: em.burst_spectrum(fb) * em.pair_response(fb) * np.exp(1j * w * segment_start_s)
+             * em.pair_aperture(k_nom.wavenumber_rad_m[0, k_nom.mode_index(m)]) for m in ("S0", "A0")}
         L = family.path.spacing_m
         d_near, d_far = family.path.end_distances_m()
         paths = (("A0", L), ("S0", L + 2 * d_near), ("S0", L + 2 * d_far))
@@ -76,10 +73,11 @@ class BaselineThicknessGauge:
         e_all, s_all = thermal._scales(self.temperatures_c)
         ratio = np.asarray(e_all / s_all, dtype=float)
         fg = np.linspace(fb[0] * min(ratio.min(), 1.0) * 0.98, fb[-1] * max(ratio.max(), 1.0) * 1.02, 240)
-        curves = fundamental_dispersion(family.build_material(), d, fg)
+        curves = fundamental_dispersion(mat, d, fg)
         k = {m: curves.wavenumber_rad_m[:, curves.mode_index(m), :] for m in ("S0", "A0")}
         if not all(np.all(np.isfinite(v)) for v in k.values()):
-            raise ValueError("thickness gauge: S0/A0 wavenumbers not found on the whole band for every candidate.")
+            raise InputError(f"family {family.name}: thickness gauge: S0/A0 wavenumbers not found on the whole band "
+                             "for every candidate thickness; check the material and the excitation band.")
         nT, J, P = self.temperatures_c.size, d.size, len(paths)
         Q = np.empty((nT, J, fb.size, P), complex)
         for it, r in enumerate(ratio):
@@ -87,7 +85,7 @@ class BaselineThicknessGauge:
             for j in range(J):
                 A = np.empty((fb.size, P), complex)
                 for p, (mode, dist) in enumerate(paths):
-                    A[:, p] = G * np.exp(-1j * np.interp(fq, fg, k[mode][j]) * dist)
+                    A[:, p] = G[mode] * np.exp(-1j * np.interp(fq, fg, k[mode][j]) * dist)
                 Q[it, j] = np.linalg.qr(A)[0]
         self._Qh = np.ascontiguousarray(Q.conj())
 

@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import math
 
+from waneguide.core.caution import CAUTION
+
 __all__ = ["render_model_card", "OBSERVABILITY_NOTE"]
 
 #: Why one path pins down the mean loss but not the maximum (physics of the measurement).
@@ -31,9 +33,7 @@ def _fmt(v, digits=3):
 
 
 def render_model_card(bundle) -> str:
-    """Markdown text for ``bundle`` (a :class:`models.bundle.ModelBundle`)."""
-    from waneguide.core.caution import CAUTION
-
+    """Markdown text for ``bundle`` (a :class:`waneguide.models.bundle.ModelBundle`)."""
     fam = bundle.family
     m = bundle.metrics or {}
     lines = [
@@ -102,7 +102,8 @@ def render_model_card(bundle) -> str:
                   "| target | MAE simulated model only | MAE with residual correction | correction |",
                   "| --- | --- | --- | --- |"]
         for t, r in m["measured"].items():
-            lines.append(f"| `{t}` | {_fmt(r.get('mae_without'))} | {_fmt(r.get('mae_with'))} | {r.get('correction', '-')} |")
+            lines.append(f"| `{t}` | {_fmt(r.get('mae_without'))} | {_fmt(r.get('mae_with'))} | "
+                         f"{r.get('correction', '-')} |")
         lines.append("")
     gp = m.get("gp", {})
     hits = [f"- `{t}`: {h}" for t, r in gp.items() if isinstance(r, dict) for h in r.get("bound_hits", [])]

@@ -14,8 +14,6 @@ Scores used here:
 
 * normalised residual (locally weighted, Lei et al. 2018, sec. 5.2):
   s = |y - mu(x)| / sigma(x), band mu(x) -+ s_(k) sigma(x);
-* CQR (Romano, Patterson, Candes 2019, arXiv:1905.03222):
-  s = max(q_lo(x) - y, y - q_hi(x)), band [q_lo - s_(k), q_hi + s_(k)];
 * CV+ / jackknife+ (Barber, Candes, Ramdas, Tibshirani 2021, doi:10.1214/20-AOS1965):
   with K fold models mu_{-k} and out-of-fold residuals R_i,
   lower = the floor(alpha (n+1))-th smallest of mu_{-k(i)}(x) - R_i sigma(x),
@@ -35,16 +33,14 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from sklearn.base import BaseEstimator, RegressorMixin, clone
-from sklearn.utils.validation import check_is_fitted, validate_data
+
+from waneguide.core.errors import InputError
 
 __all__ = [
     "conformal_rank",
     "conformal_quantile",
     "grouped_split",
     "ConformalCalibrator",
-    "NormalisedConformalRegressor",
-    "CQRRegressor",
     "coverage_by_group",
 ]
 
@@ -52,7 +48,7 @@ __all__ = [
 def conformal_rank(n: int, coverage: float) -> int:
     """k = ceil((n + 1) * coverage): the order statistic of split conformal (may exceed n)."""
     if not 0.0 < coverage < 1.0:
-        raise ValueError(f"coverage must lie strictly between 0 and 1; got {coverage!r}")
+        raise InputError(f"coverage must lie strictly between 0 and 1; got {coverage!r}")
     # tiny epsilon: (n+1)*0.9 must not turn 900.0000000001 into 901
     return int(math.ceil((n + 1) * coverage - 1e-9))
 
@@ -61,7 +57,7 @@ def conformal_quantile(scores, coverage: float) -> float:
     """The k-th smallest score, k = ceil((n+1) coverage); +inf when k > n (no clipping)."""
     s = np.sort(np.asarray(scores, dtype=float).ravel())
     if s.size and not np.all(np.isfinite(s)):
-        raise ValueError("conformal scores must be finite; got NaN or inf (check the calibration data)")
+        raise InputError("conformal scores must be finite; got NaN or inf (check the calibration data)")
     k = conformal_rank(s.size, coverage)
     return float(s[k - 1]) if k <= s.size else math.inf
 
@@ -90,12 +86,11 @@ class ConformalCalibrator:
 
     residuals: np.ndarray
     folds: np.ndarray = field(default=None)  # type: ignore[assignment]
-    groups: np.ndarray | None = None
 
     def __post_init__(self):
         self.residuals = np.asarray(self.residuals, dtype=float).ravel()
         if not np.all(np.isfinite(self.residuals)):
-            raise ValueError("calibration residuals contain NaN or inf; check the calibration targets and features")
+            raise InputError("calibration residuals contain NaN or inf; check the calibration targets and features")
         self.folds = (np.zeros(self.residuals.size, dtype=np.int64) if self.folds is None
                       else np.asarray(self.folds, dtype=np.int64).ravel())
         if self.folds.size != self.residuals.size:
@@ -110,11 +105,11 @@ class ConformalCalibrator:
         return int(self.folds.max()) + 1 if self.n else 1
 
     @classmethod
-    def from_predictions(cls, y, mu, sigma, folds=None, groups=None) -> "ConformalCalibrator":
+    def from_predictions(cls, y, mu, sigma, folds=None) -> "ConformalCalibrator":
         sigma = np.asarray(sigma, dtype=float)
         if np.any(~(sigma > 0)):
             raise ValueError("scale sigma must be positive everywhere")
-        return cls((np.asarray(y, float) - np.asarray(mu, float)) / sigma, folds, groups)
+        return cls((np.asarray(y, float) - np.asarray(mu, float)) / sigma, folds)
 
     def _centres(self, mu) -> np.ndarray:
         """(n_test, K) fold-wise centres from mu of shape (n_test,) or (n_test, K)."""
@@ -191,176 +186,3 @@ def coverage_by_group(y, lower, upper, labels=None) -> pd.DataFrame:
                          "mean_width": float(width[idx].mean())})
     return pd.DataFrame(rows)
 
-
-# ---------------------------------------------------------------------------
-# scikit-learn estimators
-# ---------------------------------------------------------------------------
-class _ConformalBase(RegressorMixin, BaseEstimator):
-    def _split(self, X, y, groups):
-        n = len(y)
-        groups = np.arange(n) if groups is None else np.asarray(groups)
-        cal = grouped_split(groups, self.calibration_fraction, self.random_state)
-        return ~cal, cal
-
-    def predict_interval(self, X, coverage: float | None = None):
-        """(lower, upper) for ``coverage`` (default: the fitted one)."""
-        check_is_fitted(self, "calibrator_")
-        cov = self.coverage if coverage is None else coverage
-        mu, s = self._centre_scale(X)
-        return self.calibrator_.interval(mu, s, cov) if not self._cqr else self._cqr_interval(X, cov)
-
-    def __sklearn_tags__(self):
-        tags = super().__sklearn_tags__()
-        tags.input_tags.allow_nan = True
-        return tags
-
-
-class NormalisedConformalRegressor(_ConformalBase):
-    """Centre model + scale model, calibrated by split conformal on normalised residuals.
-
-    Parameters
-    ----------
-    estimator : regressor or None
-        Centre model mu(x) (default :class:`models.gbm.MonotoneGBMRegressor`).
-    scale_estimator : regressor or None
-        Model of |y - mu(x)| fitted on out-of-fold residuals of the training part
-        (default: a small LightGBM).
-    coverage : float, default 0.9
-    calibration_fraction : float, default 0.25
-        Share of the groups held out for calibration.
-    scale_floor : float, default 1e-3
-        Lower limit of sigma as a fraction of the spread (std) of the training targets.
-    random_state : int or None
-
-    Attributes
-    ----------
-    estimator_, scale_estimator_, calibrator_, sigma_floor_
-    """
-
-    _cqr = False
-
-    def __init__(self, estimator=None, scale_estimator=None, *, coverage=0.9, calibration_fraction=0.25,
-                 scale_floor=1e-3, random_state=None):
-        self.estimator = estimator
-        self.scale_estimator = scale_estimator
-        self.coverage = coverage
-        self.calibration_fraction = calibration_fraction
-        self.scale_floor = scale_floor
-        self.random_state = random_state
-
-    def _defaults(self):
-        from waneguide.models.gbm import MonotoneGBMRegressor
-
-        est = MonotoneGBMRegressor(random_state=self.random_state) if self.estimator is None else self.estimator
-        sc = (MonotoneGBMRegressor(n_estimators=100, num_leaves=15, monotone_rules=(), random_state=self.random_state)
-              if self.scale_estimator is None else self.scale_estimator)
-        return est, sc
-
-    def fit(self, X, y, groups=None):
-        conformal_rank(1, self.coverage)  # validates coverage
-        X, y = validate_data(self, X, y, ensure_all_finite="allow-nan", y_numeric=True, dtype=np.float64,
-                             ensure_min_samples=4)
-        tr, cal = self._split(X, y, groups)
-        est, sc = self._defaults()
-        self.estimator_ = clone(est).fit(X[tr], y[tr])
-        # out-of-fold residuals for the scale model (2 folds; in-sample residuals of boosting are too small)
-        half = grouped_split((np.arange(len(y)) if groups is None else np.asarray(groups))[tr], 0.5,
-                             self.random_state)
-        resid = np.empty(tr.sum())
-        for part in (half, ~half):
-            if part.all() or not part.any():
-                resid[:] = np.abs(y[tr] - self.estimator_.predict(X[tr]))
-                break
-            m = clone(est).fit(X[tr][~part], y[tr][~part])
-            resid[part] = np.abs(y[tr][part] - m.predict(X[tr][part]))
-        self.sigma_floor_ = max(float(self.scale_floor) * float(np.std(y[tr]) or 1.0), 1e-12)
-        self.scale_estimator_ = clone(sc).fit(X[tr], resid)
-        mu, s = self._centre_scale(X[cal])
-        self.calibrator_ = ConformalCalibrator.from_predictions(y[cal], mu, s)
-        return self
-
-    def _centre_scale(self, X):
-        X = validate_data(self, X, reset=False, ensure_all_finite="allow-nan", dtype=np.float64)
-        mu = self.estimator_.predict(X)
-        s = np.maximum(self.scale_estimator_.predict(X), self.sigma_floor_)
-        return mu, s
-
-    def predict(self, X):
-        check_is_fitted(self, "calibrator_")
-        return self._centre_scale(X)[0]
-
-    def exceedance_probability(self, X, limit):
-        """Conservative P(Y > limit) from the conformal predictive distribution."""
-        check_is_fitted(self, "calibrator_")
-        mu, s = self._centre_scale(X)
-        return self.calibrator_.exceedance(mu, s, limit)
-
-
-class CQRRegressor(_ConformalBase):
-    """Conformalized quantile regression (Romano et al. 2019) on LightGBM quantile models.
-
-    Parameters
-    ----------
-    coverage : float, default 0.9
-    calibration_fraction : float, default 0.25
-    n_estimators, learning_rate, num_leaves, min_child_samples : passed to
-        :class:`models.gbm.QuantileGBMRegressor`.
-    random_state : int or None
-
-    ``predict`` is the rearranged median; ``predict_interval`` the conformalized bounds,
-    re-sorted per row so lower <= median <= upper.
-
-    Attributes
-    ----------
-    quantile_model_, q_hat_ (the conformal correction), calibrator_
-    """
-
-    _cqr = True
-
-    def __init__(self, *, coverage=0.9, calibration_fraction=0.25, n_estimators=200, learning_rate=0.05,
-                 num_leaves=31, min_child_samples=20, random_state=None):
-        self.coverage = coverage
-        self.calibration_fraction = calibration_fraction
-        self.n_estimators = n_estimators
-        self.learning_rate = learning_rate
-        self.num_leaves = num_leaves
-        self.min_child_samples = min_child_samples
-        self.random_state = random_state
-
-    def fit(self, X, y, groups=None):
-        from waneguide.models.gbm import QuantileGBMRegressor
-
-        conformal_rank(1, self.coverage)
-        X, y = validate_data(self, X, y, ensure_all_finite="allow-nan", y_numeric=True, dtype=np.float64,
-                             ensure_min_samples=4)
-        tr, cal = self._split(X, y, groups)
-        a = 1.0 - self.coverage
-        self.quantile_model_ = QuantileGBMRegressor(
-            quantiles=(a / 2, 0.5, 1 - a / 2), n_estimators=self.n_estimators, learning_rate=self.learning_rate,
-            num_leaves=self.num_leaves, min_child_samples=self.min_child_samples, random_state=self.random_state,
-        ).fit(X[tr], y[tr])
-        q = self.quantile_model_.predict_quantiles(X[cal])
-        scores = np.maximum(q[:, 0] - y[cal], y[cal] - q[:, 2])  # Romano et al. 2019, eq. (6)
-        # stored as signed residuals with unit scale so the calibrator's order statistic applies
-        self.calibrator_ = ConformalCalibrator(scores)
-        self.q_hat_ = conformal_quantile(scores, self.coverage)
-        return self
-
-    def _centre_scale(self, X):
-        X = validate_data(self, X, reset=False, ensure_all_finite="allow-nan", dtype=np.float64)
-        q = self.quantile_model_.predict_quantiles(X)
-        return q[:, 1], np.ones(len(X))
-
-    def _cqr_interval(self, X, coverage):
-        X = validate_data(self, X, reset=False, ensure_all_finite="allow-nan", dtype=np.float64)
-        q = self.quantile_model_.predict_quantiles(X)
-        # scores are not symmetric |r|, so take their order statistic directly
-        qh = conformal_quantile(self.calibrator_.residuals, coverage)
-        lo, hi = q[:, 0] - qh, q[:, 2] + qh
-        # a negative q_hat can shrink the band past the median: re-sort so no crossing reaches the user
-        b = np.sort(np.column_stack([lo, q[:, 1], hi]), axis=1)
-        return b[:, 0], b[:, 2]
-
-    def predict(self, X):
-        check_is_fitted(self, "calibrator_")
-        return self._centre_scale(X)[0]

@@ -1,4 +1,4 @@
-"""LightGBM regressors: a monotone-constrained central model and quantile models.
+"""LightGBM regressor with physics sign constraints, persisted in LightGBM's own text format.
 
 Physics fixes the sign of some dependencies: a larger A0 arrival delay (the
 flexural mode slows down as the plate thins, its phase velocity scaling roughly
@@ -7,12 +7,7 @@ less wall loss. Such signs are declared per feature *name* with shell-style
 patterns (:data:`DEFAULT_MONOTONE_RULES`), resolved against the feature names
 seen in ``fit``. LightGBM enforces them exactly on every split.
 
-LightGBM refuses monotone constraints with its quantile objective, so the
-quantile models (:class:`QuantileGBMRegressor`) are unconstrained; their
-predictions are *rearranged* per row (sorted; Chernozhukov, Fernandez-Val,
-Galichon 2010, doi:10.3982/ECTA7880), so no two quantiles ever cross.
-
-Both estimators keep a native LightGBM ``Booster`` and persist it as LightGBM's
+The estimator keeps a native LightGBM ``Booster`` and persists it as LightGBM's
 own text format (:meth:`MonotoneGBMRegressor.to_text` / ``from_text``), never
 as a pickle.
 """
@@ -21,17 +16,17 @@ from __future__ import annotations
 import fnmatch
 from typing import Iterable, Mapping, Sequence
 
+import lightgbm as lgb
 import numpy as np
+import pandas as pd
 from sklearn.base import BaseEstimator, RegressorMixin
 from sklearn.utils.validation import _check_sample_weight, check_is_fitted, validate_data
 
 __all__ = [
     "DEFAULT_MONOTONE_RULES",
     "MonotoneGBMRegressor",
-    "QuantileGBMRegressor",
     "resolve_monotone_constraints",
     "monotonicity_audit",
-    "booster_from_text",
 ]
 
 #: Feature-name patterns (fnmatch, case-insensitive) and the sign physics fixes for
@@ -80,58 +75,7 @@ def _threads(n_jobs, n_rows: int) -> int:
     return 1 if n_rows < 2000 else max(1, int(n_jobs or 1))
 
 
-def booster_from_text(text: str):
-    """A LightGBM Booster from its native text format."""
-    import lightgbm as lgb
-
-    return lgb.Booster(model_str=text)
-
-
-class _GBMBase(RegressorMixin, BaseEstimator):
-    """Shared fitting code (parameters are documented on the subclasses)."""
-
-    def _params(self, objective: str, alpha: float | None = None) -> dict:
-        p = {
-            "objective": objective,
-            "learning_rate": self.learning_rate,
-            "num_leaves": self.num_leaves,
-            "min_data_in_leaf": self.min_child_samples,
-            "feature_fraction": self.colsample_bytree,
-            "lambda_l2": self.reg_lambda,
-            "max_bin": 255,
-            "num_threads": self.n_jobs,
-            "seed": int(np.random.default_rng(self.random_state).integers(2**31 - 1)),
-            "deterministic": True,
-            "force_row_wise": True,
-            "verbosity": -1,
-            "min_data_in_bin": 1,
-        }
-        if alpha is not None:
-            p["alpha"] = alpha
-        return p
-
-    def _train(self, X, y, params, sample_weight=None):
-        import lightgbm as lgb
-
-        if sample_weight is not None:
-            sample_weight = _check_sample_weight(sample_weight, X, dtype=np.float64)
-        ds = lgb.Dataset(X, label=y, weight=sample_weight, params={"verbosity": -1, "min_data_in_bin": 1},
-                         free_raw_data=True)
-        return lgb.train(params, ds, num_boost_round=int(self.n_estimators))
-
-    def _check(self):
-        if int(self.n_estimators) < 1:
-            raise ValueError(f"n_estimators must be >= 1; got {self.n_estimators!r}")
-        if not 0 < float(self.learning_rate) <= 1:
-            raise ValueError(f"learning_rate must lie in (0, 1]; got {self.learning_rate!r}")
-
-    def __sklearn_tags__(self):
-        tags = super().__sklearn_tags__()
-        tags.input_tags.allow_nan = True
-        return tags
-
-
-class MonotoneGBMRegressor(_GBMBase):
+class MonotoneGBMRegressor(RegressorMixin, BaseEstimator):
     """LightGBM least-squares regressor with physics sign constraints.
 
     Parameters
@@ -174,6 +118,34 @@ class MonotoneGBMRegressor(_GBMBase):
         self.n_jobs = n_jobs
         self.random_state = random_state
 
+    def _params(self) -> dict:
+        return {
+            "objective": self.objective,
+            "learning_rate": self.learning_rate,
+            "num_leaves": self.num_leaves,
+            "min_data_in_leaf": self.min_child_samples,
+            "feature_fraction": self.colsample_bytree,
+            "lambda_l2": self.reg_lambda,
+            "max_bin": 255,
+            "num_threads": self.n_jobs,
+            "seed": int(np.random.default_rng(self.random_state).integers(2**31 - 1)),
+            "deterministic": True,
+            "force_row_wise": True,
+            "verbosity": -1,
+            "min_data_in_bin": 1,
+        }
+
+    def _check(self):
+        if int(self.n_estimators) < 1:
+            raise ValueError(f"n_estimators must be >= 1; got {self.n_estimators!r}")
+        if not 0 < float(self.learning_rate) <= 1:
+            raise ValueError(f"learning_rate must lie in (0, 1]; got {self.learning_rate!r}")
+
+    def __sklearn_tags__(self):
+        tags = super().__sklearn_tags__()
+        tags.input_tags.allow_nan = True
+        return tags
+
     def fit(self, X, y, sample_weight=None):
         self._check()
         X, y = validate_data(self, X, y, ensure_all_finite="allow-nan", y_numeric=True, dtype=np.float64)
@@ -181,13 +153,17 @@ class MonotoneGBMRegressor(_GBMBase):
         cons = resolve_monotone_constraints(names, self.monotone_rules, X.shape[1])
         if any(cons) and self.objective == "quantile":
             raise ValueError("LightGBM does not support monotone constraints with the quantile objective; "
-                             "use QuantileGBMRegressor (unconstrained, rearranged) or set monotone_rules=()")
-        params = self._params(self.objective)
+                             "set monotone_rules=() for a quantile model")
+        params = self._params()
         if any(cons):
             params["monotone_constraints"] = cons
             params["monotone_constraints_method"] = self.monotone_method
         self.monotone_constraints_ = cons
-        self.booster_ = self._train(X, y, params, sample_weight)
+        if sample_weight is not None:
+            sample_weight = _check_sample_weight(sample_weight, X, dtype=np.float64)
+        ds = lgb.Dataset(X, label=y, weight=sample_weight, params={"verbosity": -1, "min_data_in_bin": 1},
+                         free_raw_data=True)
+        self.booster_ = lgb.train(params, ds, num_boost_round=int(self.n_estimators))
         return self
 
     def predict(self, X):
@@ -209,66 +185,13 @@ class MonotoneGBMRegressor(_GBMBase):
     def from_text(cls, text: str, *, params: Mapping | None = None, feature_names: Sequence[str] | None = None):
         """Rebuild a fitted estimator from :meth:`to_text` output (no pickle involved)."""
         est = cls(**dict(params or {}))
-        est.booster_ = booster_from_text(text)
+        est.booster_ = lgb.Booster(model_str=text)
         est.n_features_in_ = est.booster_.num_feature()
         if feature_names is not None:
             est.feature_names_in_ = np.asarray(list(feature_names), dtype=object)
         est.monotone_constraints_ = resolve_monotone_constraints(feature_names, est.monotone_rules,
                                                                  est.n_features_in_)
         return est
-
-
-class QuantileGBMRegressor(_GBMBase):
-    """One LightGBM quantile (pinball-loss) model per level, rearranged so they never cross.
-
-    Parameters
-    ----------
-    quantiles : sequence of float in (0, 1), default (0.05, 0.5, 0.95)
-    n_estimators, learning_rate, num_leaves, min_child_samples, colsample_bytree, reg_lambda,
-    n_jobs, random_state : as :class:`MonotoneGBMRegressor`.
-
-    ``predict`` returns the quantile nearest 0.5; :meth:`predict_quantiles` all of them,
-    sorted along each row (rearrangement, Chernozhukov et al. 2010).
-
-    Attributes
-    ----------
-    boosters_ : list of lightgbm.Booster, one per quantile (in sorted level order)
-    quantiles_ : ndarray, sorted levels
-    """
-
-    def __init__(self, *, quantiles=(0.05, 0.5, 0.95), n_estimators=300, learning_rate=0.05, num_leaves=31,
-                 min_child_samples=20, colsample_bytree=1.0, reg_lambda=0.0, n_jobs=1, random_state=None):
-        self.quantiles = quantiles
-        self.n_estimators = n_estimators
-        self.learning_rate = learning_rate
-        self.num_leaves = num_leaves
-        self.min_child_samples = min_child_samples
-        self.colsample_bytree = colsample_bytree
-        self.reg_lambda = reg_lambda
-        self.n_jobs = n_jobs
-        self.random_state = random_state
-
-    def fit(self, X, y, sample_weight=None):
-        self._check()
-        q = np.sort(np.asarray(self.quantiles, dtype=float).ravel())
-        if q.size == 0 or np.any((q <= 0) | (q >= 1)):
-            raise ValueError(f"quantiles must lie strictly between 0 and 1; got {list(self.quantiles)!r}")
-        X, y = validate_data(self, X, y, ensure_all_finite="allow-nan", y_numeric=True, dtype=np.float64)
-        self.quantiles_ = q
-        self.boosters_ = [self._train(X, y, self._params("quantile", float(a)), sample_weight) for a in q]
-        return self
-
-    def predict_quantiles(self, X) -> np.ndarray:
-        """Array (n, len(quantiles)) of rearranged (row-sorted, non-crossing) quantiles."""
-        check_is_fitted(self, "boosters_")
-        X = validate_data(self, X, reset=False, ensure_all_finite="allow-nan", dtype=np.float64)
-        nt = _threads(self.n_jobs, len(X))
-        raw = np.column_stack([b.predict(X, num_threads=nt) for b in self.boosters_])
-        return np.sort(raw, axis=1)  # rearrangement: sorting the fitted quantiles per row
-
-    def predict(self, X):
-        qs = self.predict_quantiles(X)
-        return qs[:, int(np.argmin(np.abs(self.quantiles_ - 0.5)))]
 
 
 def monotonicity_audit(predict, X_ref, feature: int | str, sign: int, *, n_grid: int = 25,
@@ -278,8 +201,6 @@ def monotonicity_audit(predict, X_ref, feature: int | str, sign: int, *, n_grid:
     For ``n_rows`` reference rows, sweep ``feature`` over ``n_grid`` values spanning its
     observed range (others held fixed) and return ``max(-sign * diff(prediction))``.
     """
-    import pandas as pd
-
     rng = np.random.default_rng(rng)
     is_df = isinstance(X_ref, pd.DataFrame)
     Xr = X_ref.to_numpy(dtype=float) if is_df else np.asarray(X_ref, dtype=float)

@@ -30,7 +30,10 @@ import warnings
 import numpy as np
 from sklearn.base import BaseEstimator, RegressorMixin
 from sklearn.exceptions import ConvergenceWarning
+from sklearn.gaussian_process import GaussianProcessRegressor
+from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 from sklearn.utils.validation import check_is_fitted, validate_data
+from threadpoolctl import threadpool_limits
 
 __all__ = ["StandardisedGPRegressor", "farthest_point_subset"]
 
@@ -103,8 +106,6 @@ class StandardisedGPRegressor(RegressorMixin, BaseEstimator):
         self.random_state = random_state
 
     def _kernel(self, d: int):
-        from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
-
         init = dict(self.kernel_init or {})
         ls = np.broadcast_to(np.asarray(init.get("length_scale", 1.0), dtype=float), (d,)).copy()
         fixed = not self.optimize
@@ -115,8 +116,6 @@ class StandardisedGPRegressor(RegressorMixin, BaseEstimator):
 
     def fit(self, X, y, feature_labels=None):
         """Fit; ``feature_labels`` (optional) name the columns in the bound-hit report."""
-        from sklearn.gaussian_process import GaussianProcessRegressor
-
         X, y = validate_data(self, X, y, y_numeric=True, dtype=np.float64)
         if self.subset not in ("farthest", "random"):
             raise ValueError(f"subset must be 'farthest' or 'random'; got {self.subset!r}")
@@ -138,8 +137,6 @@ class StandardisedGPRegressor(RegressorMixin, BaseEstimator):
                                        n_restarts_optimizer=int(self.n_restarts_optimizer),
                                        optimizer="fmin_l_bfgs_b" if self.optimize else None,
                                        random_state=int(rng.integers(2**31 - 1)), copy_X_train=False)
-        from threadpoolctl import threadpool_limits
-
         # one BLAS thread: on a shared 2-core machine OpenBLAS's spinning threads made small GP fits
         # 25x slower (measured); the n <= 2,000 Cholesky factorisations gain little from a second core
         with warnings.catch_warnings(record=True) as caught, threadpool_limits(limits=1, user_api="blas"):

@@ -35,11 +35,19 @@ A flagged capture still gets its numbers; the bundle marks them out of domain.
 from __future__ import annotations
 
 import math
+import warnings
 
 import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator
+from sklearn.covariance import MinCovDet
+from sklearn.ensemble import IsolationForest
+from sklearn.ensemble._iforest import _average_path_length  # private: the exact c(n) IsolationForest adds
 from sklearn.utils.validation import check_is_fitted, validate_data
+
+from waneguide.core.errors import InputError
+from waneguide.features.temperature import ThermalModel
+from waneguide.models.conformal import grouped_split
 
 __all__ = ["MismatchDetector", "PhysicsChecker", "PHYSICS_FEATURES", "combine_mismatch"]
 
@@ -55,8 +63,6 @@ def _pack_forest(iforest) -> dict:
     c(n_node_samples) minus one, i.e. exactly what sklearn adds per tree
     (sklearn/ensemble/_iforest.py, ``_parallel_compute_tree_depths``).
     """
-    from sklearn.ensemble._iforest import _average_path_length
-
     trees = [e.tree_ for e in iforest.estimators_]
     T, M = len(trees), max(t.node_count for t in trees)
     left = np.full((T, M), -1, dtype=np.int32)
@@ -147,9 +153,6 @@ class MismatchDetector(BaseEstimator):
 
     def fit(self, X, y=None, groups=None):
         """Fit on in-family rows; ``groups`` (e.g. specimen) keeps calibration groups apart from fitting ones."""
-        from sklearn.covariance import MinCovDet
-        from sklearn.ensemble import IsolationForest
-
         if not 0.0 < float(self.false_alarm_rate) < 1.0:
             raise ValueError(f"false_alarm_rate must lie in (0, 1); got {self.false_alarm_rate!r}")
         X = validate_data(self, X, ensure_all_finite="allow-nan", dtype=np.float64, ensure_min_samples=10)
@@ -161,14 +164,13 @@ class MismatchDetector(BaseEstimator):
         scale = np.where(scale > 0, scale, std)
         self.columns_ = np.flatnonzero(np.isfinite(scale) & (scale > 0))
         if self.columns_.size == 0:
-            raise ValueError("every feature is constant in the training data; the mismatch detector has nothing to learn")
+            raise InputError("every feature is constant in the training data; the mismatch detector has nothing "
+                             "to learn. Train on a campaign whose cases vary")
         self.median_ = np.where(np.isfinite(med), med, 0.0)
         self.scale_ = np.where(scale > 0, scale, 1.0)
         Z = self._standardise(X)
         n = len(Z)
         if groups is not None:
-            from waneguide.models.conformal import grouped_split
-
             is_cal = grouped_split(np.asarray(groups), self.calibration_fraction, rng)
             cal, fit = np.flatnonzero(is_cal), rng.permutation(np.flatnonzero(~is_cal))
         else:
@@ -178,8 +180,6 @@ class MismatchDetector(BaseEstimator):
         if len(fit) > self.max_fit_points:
             fit = fit[: int(self.max_fit_points)]
         seed = lambda: int(rng.integers(2**31 - 1))  # noqa: E731
-        import warnings
-
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             self.mcd_ = MinCovDet(support_fraction=self.support_fraction, random_state=seed()).fit(Z[fit])
@@ -313,8 +313,6 @@ class PhysicsChecker:
 
     def _thermal(self):
         if self._thermal_model is None:
-            from waneguide.features.temperature import ThermalModel
-
             self._thermal_model = ThermalModel(self.family)
         return self._thermal_model
 

@@ -22,6 +22,7 @@ from sklearn.base import BaseEstimator, RegressorMixin, clone
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from waneguide.models.blend import grouped_folds
+from waneguide.models.gp import StandardisedGPRegressor
 
 __all__ = ["ResidualCorrector", "CORRECTION_CANDIDATES"]
 
@@ -80,8 +81,6 @@ class ResidualCorrector(RegressorMixin, BaseEstimator):
         if kind == "bias":
             return _Const()
         if self.estimator is None:
-            from waneguide.models.gp import StandardisedGPRegressor
-
             return StandardisedGPRegressor(max_points=2000, random_state=self.random_state)
         return clone(self.estimator)
 

@@ -7,18 +7,21 @@ Thinning profiles (:mod:`waneguide.simulation.profiles`)
 Forward model (:mod:`waneguide.simulation.forward`)
     :class:`ForwardModel` (S0/A0 modal synthesis on a precomputed thickness
     grid, every approximation listed in its module docstring),
-    :func:`simulate_capture` (one capture of an explicit profile).
+    :func:`simulate_capture` (one capture of an explicit profile). The drive burst and
+    the transducers come from :mod:`waneguide.features.excitation`.
 Campaigns (:mod:`waneguide.simulation.campaign`)
-    :func:`plan_campaign`, :func:`run_campaign` (joblib or Dask, chunked,
-    atomic, resumable), :func:`load_campaign` -> :class:`Campaign`.
+    :func:`plan_campaign`, :func:`run_campaign` (in-process, joblib or Dask through
+    :func:`waneguide.core.runner.run_tasks`; chunked, atomic, resumable),
+    :func:`load_campaign` -> :class:`Campaign` (chunk SHA-256 checked on every read).
 Export (:mod:`waneguide.simulation.export`)
     :func:`export_campaign_captures` (cases and baselines as capture files).
 
-Names are imported lazily, so importing the package stays cheap.
+Names are imported on first use by the project's one lazy-import mechanism
+(:func:`waneguide.core.lazy.lazy_exports`, PEP 562), so importing the package stays cheap.
 """
 from __future__ import annotations
 
-import importlib
+from waneguide.core.lazy import lazy_exports
 
 _EXPORTS = {
     "ThinningProfile": "profiles",
@@ -39,7 +42,4 @@ _EXPORTS = {
 __all__ = sorted(_EXPORTS)
 
 
-def __getattr__(name: str):
-    if name in _EXPORTS:
-        return getattr(importlib.import_module(f"{__name__}.{_EXPORTS[name]}"), name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+__getattr__, __dir__ = lazy_exports(__name__, _EXPORTS, globals())

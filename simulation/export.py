@@ -4,7 +4,7 @@ Each exported case gives one capture file ``<case_id>.<fmt>``; each specimen's
 pristine baseline is written once as ``<specimen_id>_baseline.<fmt>`` (all
 states of a specimen share it). ``index.csv`` lists, per case, the capture file,
 its baseline file and the ground truth and confounders from the campaign table.
-Files go through :func:`features.io.write_capture` (atomic; format from the
+Files go through :func:`waneguide.features.io.write_capture` (atomic; format from the
 suffix: csv, mat, h5, hdf5, npz).
 
 Exported captures carry the metadata of the campaign: ``path_id`` is the
@@ -20,7 +20,8 @@ from typing import Iterable
 import pandas as pd
 
 from waneguide.core.atomic import atomic_write_text
-
+from waneguide.core.errors import InputError
+from waneguide.features.io import write_capture
 from waneguide.simulation.campaign import load_campaign
 
 __all__ = ["export_campaign_captures", "EXPORT_FORMATS"]
@@ -37,7 +38,7 @@ def export_campaign_captures(campaign_dir: str | Path, out_dir: str | Path, *, c
     Parameters
     ----------
     campaign_dir : path
-        A finished campaign (:func:`training.campaign.run_campaign`).
+        A finished campaign (:func:`waneguide.simulation.campaign.run_campaign`).
     out_dir : path
         Destination folder (created). Existing files of the same names are
         refused rather than overwritten.
@@ -53,9 +54,7 @@ def export_campaign_captures(campaign_dir: str | Path, out_dir: str | Path, *, c
     """
     fmt = str(fmt).lower().lstrip(".")
     if fmt not in EXPORT_FORMATS:
-        raise ValueError(f"fmt must be one of {', '.join(EXPORT_FORMATS)}; got {fmt!r}.")
-    from waneguide.features.io import write_capture
-
+        raise InputError(f"fmt must be one of {', '.join(EXPORT_FORMATS)}; got {fmt!r}.")
     camp = load_campaign(campaign_dir)
     table = camp.cases
     if cases is None:
@@ -66,12 +65,12 @@ def export_campaign_captures(campaign_dir: str | Path, out_dir: str | Path, *, c
         for c in cases:
             if isinstance(c, str):
                 if c not in by_id:
-                    raise ValueError(f"case_id {c!r} is not in campaign {campaign_dir}.")
+                    raise InputError(f"case_id {c!r} is not in campaign {campaign_dir}.")
                 positions.append(by_id[c])
             else:
                 i = int(c)
                 if not 0 <= i < len(table):
-                    raise ValueError(f"case index {i} is outside campaign {campaign_dir} (0 to {len(table) - 1}).")
+                    raise InputError(f"case index {i} is outside campaign {campaign_dir} (0 to {len(table) - 1}).")
                 positions.append(i)
     positions = list(dict.fromkeys(positions))  # drop repeats, keep the order asked for
     order = {pos: k for k, pos in enumerate(positions)}
@@ -82,7 +81,7 @@ def export_campaign_captures(campaign_dir: str | Path, out_dir: str | Path, *, c
     planned |= {out / f"{table['specimen_id'].iloc[i]}_baseline.{fmt}" for i in positions}
     clash = sorted(str(p) for p in planned | {index_path} if p.exists())
     if clash:
-        raise ValueError(f"{len(clash)} file(s) already exist in {out} (first: {clash[0]}); nothing was overwritten. "
+        raise InputError(f"{len(clash)} file(s) already exist in {out} (first: {clash[0]}); nothing was overwritten. "
                          "Export into an empty folder.")
     rows = []
     written_baselines: set[str] = set()

@@ -10,9 +10,9 @@ excitation band, is
 X        DFT of the tone burst (``excitation`` section), starting at the trigger
 H        disc resonance ``1 / (1 + i Q (f/f_r - f_r/f))``, transmit and receive
 A_m      disc aperture factor ``2 J1(k_m a) / (k_m a)`` (uniform circular disc of
-         radius a; the classic tuning of bonded discs, Raghavan and Cesnik 2005,
-         J. Intell. Mater. Syst. Struct. 16, 309, doi:10.1177/1045389X05050106),
-         evaluated at nominal thickness and reference temperature
+         radius a; Raghavan and Cesnik 2005), evaluated at nominal thickness and
+         reference temperature
+         (X, H and A_m: the one excitation model, :mod:`waneguide.features.excitation`)
 E_m      relative mode excitability (``transducer`` section; empirical)
 g        coupling gain of both discs, 10^((c_tx + c_rx)/20)
 tau_j    trigger jitter (moves everything, crosstalk included)
@@ -32,7 +32,7 @@ interpolation in ln t) gives a (cases x grid) weight matrix W, and
 ``Phi = W @ K`` with K the (grid x frequency) wavenumber table, so a whole chunk
 of cases is one BLAS product per mode.
 
-Temperature (linear material model of :mod:`features.materials`): with
+Temperature (linear material model of :mod:`waneguide.features.materials`): with
 Poisson's ratio fixed all velocities scale by ``s(T) = sqrt(E(T) rho_ref /
 (E_ref rho(T)))``, so ``k(w, t; T) = k_ref(w, t / s) / s`` (Rayleigh-Lamb
 dispersion depends on w t / c_T and k t only; Graff 1975 sec. 8.1); lengths and
@@ -64,7 +64,7 @@ simulation; each item is a candidate correction):
   from the local wavenumber only;
 - one-sided loss is treated as the symmetric plate of the remaining thickness:
   the mid-plane offset that couples S0 and A0 is ignored;
-- profiles are uniform across the width (see :mod:`training.profiles`), so the
+- profiles are uniform across the width (see :mod:`waneguide.simulation.profiles`), so the
   edge echoes cross the same profile obliquely;
 - transducers are point-like for geometry (the aperture factor only shapes the
   spectrum), the excitabilities are constants, the disc resonance is a single
@@ -87,73 +87,28 @@ J. L. Rose, *Ultrasonic Waves in Solid Media*, 1999, ch. 8 and 10.
 from __future__ import annotations
 
 import math
-import threading
-from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np
 import scipy.fft as sfft
-from scipy.special import j1
 
+from waneguide.core.errors import InputError
 from waneguide.features.capture import Capture
-from waneguide.features.dispersion import fundamental_dispersion
 from waneguide.features.family import Family
+from waneguide.simulation._tables import MODES, cached_tables, mode_index
 
 __all__ = [
     "FORWARD_MODEL_VERSION",
     "ForwardModel",
     "simulate_capture",
-    "tone_burst",
     "MODES",
 ]
 
 #: Bumped whenever the synthesis changes what it writes (part of the campaign fingerprint).
-FORWARD_MODEL_VERSION = "1"
+#: 2: the drive burst of features.excitation (every sample in [0, T], gaussian sigma T / 6).
+FORWARD_MODEL_VERSION = "2"
 
-MODES = ("S0", "A0")
-_BAND_FLOOR = 1e-3  # relative source amplitude that bounds the synthesised band (-60 dB)
-_REF_PEAK_FRACTION = 0.25  # pristine direct-arrival peak as a fraction of ADC full scale
-_RINGING_Q_FACTOR = 10.0
 _PATHS = ("direct", "near_end", "far_end", "edge_1", "edge_2")
-
-
-def tone_burst(centre_frequency_hz: float, cycles: float, sample_rate_hz: float, window: str = "hann") -> np.ndarray:
-    """Windowed sine burst starting at sample 0 (the trigger) [unit amplitude]."""
-    n = int(round(cycles / centre_frequency_hz * sample_rate_hz))
-    if n < 4:
-        raise ValueError(f"the burst is only {n} samples long; raise sample_rate_hz or cycles.")
-    t = np.arange(n) / sample_rate_hz
-    carrier = np.sin(2 * np.pi * centre_frequency_hz * t)
-    u = (np.arange(n) + 0.5) / n
-    if window == "hann":
-        w = np.sin(np.pi * u) ** 2
-    elif window == "gaussian":
-        w = np.exp(-0.5 * ((u - 0.5) / 0.15) ** 2)
-    elif window == "tukey":
-        from scipy.signal.windows import tukey
-
-        w = tukey(n, 0.5, sym=False)
-    elif window == "rect":
-        w = np.ones(n)
-    else:
-        raise ValueError(f"unknown window {window!r}; accepted: hann, gaussian, tukey, rect.")
-    return carrier * w
-
-
-@dataclass(frozen=True)
-class _Tables:
-    n_fft: int
-    bins: np.ndarray            # (F,) rfft bin indices inside the band
-    freq_hz: np.ndarray         # (F,)
-    ln_t0: float
-    dln: float
-    thickness_grid_m: np.ndarray  # (G,)
-    K: np.ndarray               # (M, G, F) wavenumber at reference temperature [rad/m]
-    cg_nominal: np.ndarray      # (M, F) group velocity at nominal thickness [m/s]
-    source: np.ndarray          # (M, F) complex source spectrum per mode (scaled, pretrigger delay included)
-    crosstalk: np.ndarray       # (F,) complex, unit time-domain peak
-    ringing: np.ndarray         # (F,) complex, unit time-domain peak
-    ref_peak_v: float
 
 
 class ForwardModel:
@@ -198,7 +153,7 @@ class ForwardModel:
         self.sec_theta = self.path_lengths_m / L
         self.sec_theta[1:3] = 1.0
         self.full_scale_v = family.full_scale_v
-        self._tables = _cached_tables(family, self.n_thickness)
+        self._tables = cached_tables(family, self.n_thickness)
 
     # -- small public helpers --------------------------------------------------------
     @property
@@ -221,7 +176,7 @@ class ForwardModel:
 
     def source_waveform(self, mode: str) -> np.ndarray:
         """The pulse one mode carries as it leaves the transmitter (no propagation) [V], on the record."""
-        m = _mode_index(mode)
+        m = mode_index(mode)
         spec = np.zeros(self.n_fft // 2 + 1, complex)
         spec[self._tables.bins] = self._tables.source[m]
         return sfft.irfft(spec, self.n_fft)[: self.n_samples]
@@ -231,7 +186,7 @@ class ForwardModel:
         x = np.asarray(x_m, dtype=float)
         t = np.asarray(thickness_m, dtype=float)
         if x.ndim != 1 or x.shape != t.shape or x.size == 0:
-            raise ValueError(f"x_m and thickness_m must be 1-D arrays of one length; got {x.shape} and {t.shape}.")
+            raise InputError(f"x_m and thickness_m must be 1-D arrays of one length; got {x.shape} and {t.shape}.")
         order = np.argsort(x, kind="stable")
         return np.interp(self.x_m, x[order], t[order], left=self.nominal_thickness_m, right=self.nominal_thickness_m)
 
@@ -286,9 +241,9 @@ class ForwardModel:
         thick = np.atleast_2d(np.asarray(thickness_m, dtype=float))
         n, n_seg = thick.shape
         if n_seg != self.x_m.size:
-            raise ValueError(f"thickness_m must have {self.x_m.size} columns (one per segment); got {n_seg}.")
+            raise InputError(f"thickness_m must have {self.x_m.size} columns (one per segment); got {n_seg}.")
         if not np.all(np.isfinite(thick)) or np.any(thick <= 0):
-            raise ValueError("thickness_m must be positive and finite (loss below 100 %).")
+            raise InputError("thickness_m must be positive and finite (loss below 100 %).")
         b = lambda v: np.broadcast_to(np.asarray(v, dtype=float), (n,))  # noqa: E731
         temp = b(temperature_c)
         gain, jitter, att_db, refl = b(gain), b(jitter_s), b(attenuation_db_per_m), b(echo_reflection)
@@ -300,7 +255,7 @@ class ForwardModel:
         u = (np.log(thick * scale[:, None]) - tb.ln_t0) / tb.dln
         if u.min() < 0 or u.max() > G - 1:
             lo, hi = tb.thickness_grid_m[0], tb.thickness_grid_m[-1]
-            raise ValueError(
+            raise InputError(
                 f"thickness (temperature-corrected) outside the precomputed grid [{lo * 1e3:.3f}, {hi * 1e3:.3f}] mm; "
                 "loss must stay below 90 % and thickness at most 108 % of nominal."
             )
@@ -324,7 +279,7 @@ class ForwardModel:
         fc = self.family.excitation.centre_frequency_hz
         a_np = (att_db / (20 * np.log10(np.e)))[:, None] * (f / fc)[None, :]  # Np/m, (n, F)
         n_paths = len(_PATHS) if echoes else 1
-        mode_ids = [_mode_index(m) for m in modes]
+        mode_ids = [mode_index(m) for m in modes]
         phis = {m: ((W @ tb.K[m]) / s[:, None], (Wn @ tb.K[m]) / s[:, None]) for m in mode_ids}
         Y = np.zeros((n, f.size), complex)
         z = np.empty((n, f.size), complex)
@@ -410,7 +365,7 @@ class ForwardModel:
             ringing_db = mid(dom.ringing_db)
         c = np.asarray(coupling_db, dtype=float)
         if c.shape != (2,):
-            raise ValueError(f"coupling_db must be a pair (transmitter_db, receiver_db); got {coupling_db!r}.")
+            raise InputError(f"coupling_db must be a pair (transmitter_db, receiver_db); got {coupling_db!r}.")
         clean = self.synthesize(
             np.asarray(thickness_m, dtype=float)[None, :], temperature_c,
             gain=10.0 ** (c.sum() / 20.0), jitter_s=jitter_s, attenuation_db_per_m=attenuation_db_per_m,
@@ -418,118 +373,6 @@ class ForwardModel:
             echoes=echoes,
         )
         return self.finish(clean, snr_db, rng, clip=clip)[0]
-
-
-# ---------------------------------------------------------------------------
-# Precomputation (once per family and grid size, per process)
-# ---------------------------------------------------------------------------
-_CACHE: dict[tuple[str, int], _Tables] = {}
-_LOCK = threading.Lock()
-
-
-def _mode_index(mode: str) -> int:
-    try:
-        return MODES.index(mode)
-    except ValueError:
-        raise ValueError(f"mode {mode!r} is not simulated; accepted: {', '.join(MODES)}.") from None
-
-
-def _cached_tables(family: Family, n_thickness: int) -> _Tables:
-    key = (family.fingerprint, n_thickness)
-    with _LOCK:
-        tb = _CACHE.get(key)
-    if tb is None:
-        tb = _build_tables(family, n_thickness)
-        with _LOCK:
-            _CACHE[key] = tb
-    return tb
-
-
-def _disc_response(f: np.ndarray, fr: float, q: float) -> np.ndarray:
-    """Second-order resonator 1 / (1 + i Q (f/f_r - f_r/f))."""
-    return 1.0 / (1.0 + 1j * q * (f / fr - fr / f))
-
-
-def _aperture(k: np.ndarray, radius_m: float) -> np.ndarray:
-    """2 J1(k a) / (k a), the uniform-disc aperture factor."""
-    z = k * radius_m
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(z > 1e-8, 2.0 * j1(z) / np.where(z > 1e-8, z, 1.0), 1.0)
-
-
-def _build_tables(family: Family, n_thickness: int) -> _Tables:
-    if n_thickness < 16:
-        raise ValueError(f"n_thickness must be at least 16; got {n_thickness}.")
-    acq, exc, trd = family.acquisition, family.excitation, family.transducer
-    fs, N = acq.sample_rate_hz, int(acq.record_length)
-    fc = exc.centre_frequency_hz
-    fr = trd.resonance_khz * 1e3 if trd.resonance_khz is not None else fc
-    burst = tone_burst(fc, exc.cycles, fs, exc.window)
-    mat = family.build_material()
-    t_nom = family.nominal_thickness_m
-    # band: bins where |X H^2| exceeds the floor, found on a first FFT of the record length
-    f_rec = sfft.rfftfreq(N, 1 / fs)
-    X_rec = sfft.rfft(burst, N)
-    env = np.abs(X_rec) * np.abs(_disc_response(np.maximum(f_rec, 1e-3), fr, trd.quality_factor)) ** 2
-    inband = np.flatnonzero(env > _BAND_FLOOR * env.max())
-    inband = inband[f_rec[inband] > 0]
-    f_lo, f_hi = f_rec[inband[0]], f_rec[inband[-1]]
-    # FFT length: long enough that the slowest synthesised arrival does not wrap, for a path
-    # thinned all along to the domain's deepest loss (band-edge components below -60 dB may)
-    t_thin = t_nom * (1.0 - family.domain.max_loss_pct[1] / 100.0)
-    probe = fundamental_dispersion(mat, [t_thin, t_nom], np.linspace(f_lo, f_hi, 64))
-    cg_min = np.nanmin(probe.group_velocity_m_s)
-    d_near, d_far = family.path.end_distances_m()
-    e1, e2 = family.edge_distances_m()
-    L = family.path.spacing_m
-    r_max = max(L + 2 * d_near, L + 2 * d_far, math.hypot(L, 2 * max(e1, e2)))
-    t_needed = acq.pretrigger_s + r_max * 1.05 / cg_min + 3 * len(burst) / fs + 10 * trd.quality_factor / (np.pi * fr)
-    n_fft = max(N, sfft.next_fast_len(int(math.ceil(t_needed * fs)), real=True))
-    n_fft = min(n_fft, 8 * N)
-    f_all = sfft.rfftfreq(n_fft, 1 / fs)
-    bins = np.flatnonzero((f_all >= f_lo) & (f_all <= f_hi))
-    f = f_all[bins]
-    delay = np.exp(-2j * np.pi * f * acq.pretrigger_s)
-    X = sfft.rfft(burst, n_fft)[bins] * delay
-    H2 = _disc_response(f, fr, trd.quality_factor) ** 2
-    # thickness grid, log-spaced
-    grid = np.geomspace(0.07 * t_nom, 1.10 * t_nom, n_thickness)
-    curves = fundamental_dispersion(mat, grid, f)
-    K = np.ascontiguousarray(curves.wavenumber_rad_m.transpose(1, 0, 2))  # (M, G, F)
-    if not np.all(np.isfinite(K)):
-        raise ValueError("dispersion table has gaps (S0/A0 root not found); check the material and band.")
-    nominal = fundamental_dispersion(mat, t_nom, f)
-    k_nom = nominal.wavenumber_rad_m[0]
-    cg_nom = nominal.group_velocity_m_s[0]
-    radius = family.path.transducer_diameter_mm * 0.5e-3
-    excit = np.array([trd.s0_excitability, trd.a0_excitability])
-    src = np.empty((2, f.size), complex)
-    for m in range(2):
-        ap = _aperture(k_nom[m], radius) ** 2 if trd.aperture == "disc" else 1.0
-        src[m] = X * H2 * ap * excit[m]
-
-    def peak_of(spec_band: np.ndarray) -> float:
-        full = np.zeros(n_fft // 2 + 1, complex)
-        full[bins] = spec_band
-        return float(np.abs(sfft.irfft(full, n_fft)[:N]).max())
-
-    # pristine direct arrival at reference temperature, unit scale
-    phase = np.exp(-1j * k_nom * L)
-    ref_peak_unit = peak_of((src * phase).sum(axis=0))
-    scale = _REF_PEAK_FRACTION * family.full_scale_v / ref_peak_unit
-    src *= scale
-    ref_peak = _REF_PEAK_FRACTION * family.full_scale_v
-    xt = X / peak_of(X)
-    t = np.arange(n_fft) / fs
-    tau = _RINGING_Q_FACTOR * trd.quality_factor / (np.pi * fr)
-    ring_t = np.exp(-t / tau) * np.sin(2 * np.pi * fr * t)
-    ring = sfft.rfft(ring_t, n_fft)[bins] * delay
-    ring = ring / peak_of(ring)
-    return _Tables(
-        n_fft=int(n_fft), bins=bins, freq_hz=f, ln_t0=float(np.log(grid[0])),
-        dln=float(np.log(grid[1] / grid[0])), thickness_grid_m=grid, K=K, cg_nominal=cg_nom,
-        source=src, crosstalk=xt, ringing=ring, ref_peak_v=ref_peak,
-    )
 
 
 _MODELS: dict[str, ForwardModel] = {}
@@ -590,7 +433,7 @@ def simulate_capture(
     unknown = set(confounders) - {"jitter_s", "attenuation_db_per_m", "echo_reflection", "crosstalk_db",
                                   "ringing_db", "modes", "echoes", "clip"}
     if unknown:
-        raise ValueError(f"unknown confounder(s) {sorted(unknown)}; accepted: jitter_s, attenuation_db_per_m, "
+        raise InputError(f"unknown confounder(s) {sorted(unknown)}; accepted: jitter_s, attenuation_db_per_m, "
                          "echo_reflection, crosstalk_db, ringing_db, modes, echoes, clip.")
     fm = _model_for(family)
     seg = fm.thickness_on_segments(x_m, thickness_m)

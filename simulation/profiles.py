@@ -45,6 +45,8 @@ import numpy as np
 from scipy.ndimage import gaussian_filter1d
 from scipy.special import ndtr
 
+from waneguide.core.errors import InputError
+
 __all__ = [
     "ThinningProfile",
     "PatchSpec",
@@ -78,7 +80,7 @@ ShapeName = Literal["flat", "gaussian", "elliptical", "rough"]
 def segment_centres_m(path_length_m: float, segment_m: float) -> np.ndarray:
     """Centres of equal segments (as close to ``segment_m`` as divides the path) [m]."""
     if not path_length_m > 0 or not segment_m > 0:
-        raise ValueError(f"path_length_m and segment_m must be positive; got {path_length_m!r}, {segment_m!r}.")
+        raise InputError(f"path_length_m and segment_m must be positive; got {path_length_m!r}, {segment_m!r}.")
     n = max(1, int(round(path_length_m / segment_m)))
     dx = path_length_m / n
     return (np.arange(n) + 0.5) * dx
@@ -125,11 +127,11 @@ class ThinningProfile:
         x = np.asarray(self.x_m, dtype=float)
         t = np.asarray(self.thickness_m, dtype=float)
         if x.ndim != 1 or x.shape != t.shape or x.size == 0:
-            raise ValueError(f"x_m and thickness_m must be 1-D arrays of one length; got {x.shape} and {t.shape}.")
+            raise InputError(f"x_m and thickness_m must be 1-D arrays of one length; got {x.shape} and {t.shape}.")
         if np.any(np.diff(x) <= 0):
-            raise ValueError("x_m must be strictly increasing.")
+            raise InputError("x_m must be strictly increasing.")
         if not np.all(np.isfinite(t)) or np.any(t <= 0):
-            raise ValueError("thickness_m must be positive and finite everywhere (loss below 100 %).")
+            raise InputError("thickness_m must be positive and finite everywhere (loss below 100 %).")
         object.__setattr__(self, "x_m", x)
         object.__setattr__(self, "thickness_m", t)
 
@@ -149,25 +151,11 @@ class ThinningProfile:
                          np.array([self.patch_count]))
         return {k: (int(v[0]) if k == "patch_count" else float(v[0])) for k, v in t.items()}
 
-    @property
-    def max_loss_mm(self) -> float:
-        return self.truth()["max_loss_mm"]
-
-    @property
-    def max_loss_pct(self) -> float:
-        return self.truth()["max_loss_pct"]
-
-    @property
-    def mean_loss_pct(self) -> float:
-        return self.truth()["mean_loss_pct"]
-
-    @property
-    def lost_area_mm2(self) -> float:
-        return self.truth()["lost_area_mm2"]
-
-    @property
-    def extent_mm(self) -> float:
-        return self.truth()["extent_mm"]
+    max_loss_mm = property(lambda self: self.truth()["max_loss_mm"], doc="Largest local loss [mm].")
+    max_loss_pct = property(lambda self: self.truth()["max_loss_pct"], doc="Largest local loss [% of nominal].")
+    mean_loss_pct = property(lambda self: self.truth()["mean_loss_pct"], doc="Path-averaged loss [% of nominal].")
+    lost_area_mm2 = property(lambda self: self.truth()["lost_area_mm2"], doc="Loss integrated along the path [mm^2].")
+    extent_mm = property(lambda self: self.truth()["extent_mm"], doc="Length with loss above EXTENT_THRESHOLD [mm].")
 
     def resample(self, x_m: np.ndarray) -> np.ndarray:
         """Thickness at other positions (linear interpolation, nominal outside) [m]."""
@@ -283,17 +271,17 @@ class PatchSpec:
         if self.shape == "rough":
             rng = np.random.default_rng(self.seed)
             return loss_rough(x_m, centre_m=self.centre_m, length_m=self.length_m, depth_m=d, rng=rng)
-        raise ValueError(f"unknown patch shape {self.shape!r}; accepted: flat, gaussian, elliptical, rough.")
+        raise InputError(f"unknown patch shape {self.shape!r}; accepted: flat, gaussian, elliptical, rough.")
 
 
 def _check_common(x_m, nominal_thickness_m, path_length_m, max_loss_pct):
     x = np.asarray(x_m, dtype=float)
     if not nominal_thickness_m > 0:
-        raise ValueError(f"nominal_thickness_m must be positive; got {nominal_thickness_m!r}.")
+        raise InputError(f"nominal_thickness_m must be positive; got {nominal_thickness_m!r}.")
     if path_length_m is None:
         path_length_m = float(x[-1] + (x[-1] - x[-2]) / 2) if x.size > 1 else float(2 * x[0])
     if not 0.0 <= max_loss_pct < 90.0:
-        raise ValueError(f"max_loss_pct must lie in [0, 90); got {max_loss_pct!r}.")
+        raise InputError(f"max_loss_pct must lie in [0, 90); got {max_loss_pct!r}.")
     return x, float(path_length_m)
 
 
@@ -308,7 +296,7 @@ def site_shape(x_m, patches: Sequence[PatchSpec]) -> np.ndarray:
     total = top + bottom
     peak = total.max() if total.size else 0.0
     if peak <= 0:
-        raise ValueError("the patches do not overlap the path positions x_m; move them inside [0, L].")
+        raise InputError("the patches do not overlap the path positions x_m; move them inside [0, L].")
     return total / peak
 
 
@@ -359,7 +347,7 @@ def pit_profile(x_m, nominal_thickness_m: float, *, centre_m: float, length_m: f
                 rng=None, path_length_m=None) -> ThinningProfile:
     """One Gaussian or elliptical pit."""
     if kind not in ("gaussian", "elliptical"):
-        raise ValueError(f"pit kind must be 'gaussian' or 'elliptical'; got {kind!r}.")
+        raise InputError(f"pit kind must be 'gaussian' or 'elliptical'; got {kind!r}.")
     return _single(kind, x_m, nominal_thickness_m, centre_m, length_m, max_loss_pct, sides, split, rng, path_length_m)
 
 
@@ -371,9 +359,9 @@ def rough_profile(x_m, nominal_thickness_m: float, *, centre_m: float, length_m:
 
 def _single(shape, x_m, nominal, centre_m, length_m, max_loss_pct, sides, split, rng, path_length_m):
     if sides not in ("one", "two"):
-        raise ValueError(f"sides must be 'one' or 'two'; got {sides!r}.")
+        raise InputError(f"sides must be 'one' or 'two'; got {sides!r}.")
     if not length_m > 0:
-        raise ValueError(f"length_m must be positive; got {length_m!r}.")
+        raise InputError(f"length_m must be positive; got {length_m!r}.")
     rng = np.random.default_rng(rng)
     seed = int(rng.integers(2**62)) if shape == "rough" else None
     patch = PatchSpec(shape, float(centre_m), float(length_m), 1.0, "top", seed)

@@ -23,7 +23,8 @@ def _burst(delay_samples=0.0, cycles=5):
 
 
 def test_envelope_matches_scipy_hilbert():
-    # reference: scipy.signal.hilbert (Marple 1999 construction); identity up to FFT round-off
+    # reference: scipy.signal.hilbert (Marple 1999 construction); identity up to FFT round-off: for
+    # unit-scale data of 4096 samples that is ~1e-15, atol 1e-12 is common practice, no source
     rng = np.random.default_rng(3)
     x = np.stack([_burst(0.0) + 0.01 * rng.normal(size=N), rng.normal(size=N)])
     np.testing.assert_allclose(hilbert_envelope(x), np.abs(scipy.signal.hilbert(x, axis=-1)), rtol=0, atol=1e-12)
@@ -33,7 +34,8 @@ def test_envelope_matches_scipy_hilbert():
 
 def test_envelope_of_tone_burst_is_its_window():
     # narrow-band limit (Bedrosian's theorem, approximately: the Hann window's spectrum
-    # is not strictly below f0): the envelope of w(t) sin(2 pi f0 t) is w(t) to ~1 % of the peak
+    # is not strictly below f0): the envelope of w(t) sin(2 pi f0 t) is w(t) to 1 % of the peak
+    # (common practice, no source; this code gives 3e-4 for 10 cycles, a regression value)
     b = _burst(0.0, cycles=10)
     env = hilbert_envelope(b, n_fft=2 * N)
     n_b = int(round(10 / F0 * FS))
@@ -46,7 +48,8 @@ def test_envelope_of_tone_burst_is_its_window():
 def test_every_estimator_recovers_fractional_delay(delay):
     # issue 4 check: a tone burst delayed by a known non-integer number of samples is
     # recovered within 0.05 sample by every estimator at high SNR (66 dB peak-to-noise here;
-    # the threshold crossing, the noisiest, then has a spread near 0.01 sample)
+    # the threshold crossing, the noisiest, then has a spread near 0.01 sample). The 0.05 sample
+    # is the acceptance figure of issue 4 (a project requirement; common practice, no source).
     rng = np.random.default_rng(int(delay * 100))
     ref = _burst(0.0)
     x = _burst(delay) + 5e-4 * rng.normal(size=N)
@@ -86,7 +89,8 @@ def _crb_samples2(s_fine_derivative, sigma):
 
 @pytest.mark.parametrize("snr_db", [20.0, 30.0, 40.0])
 def test_xcorr_spread_within_twice_cramer_rao(snr_db):
-    # issue 4 check: cross-correlation delay spread within 2x of the CRB at 20-40 dB
+    # issue 4 check (acceptance figure of issue 4, a project requirement): cross-correlation delay
+    # spread within 2x of the CRB at 20-40 dB
     # (SNR = peak amplitude^2 / noise variance). Reference noise-free (Kay's known-signal
     # setting). 400 trials: the sample standard deviation has ~3.5 % relative error,
     # so the lower limit 0.8 x sqrt(CRB) (an unbiased estimator cannot beat the bound) is safe.
@@ -103,4 +107,6 @@ def test_xcorr_spread_within_twice_cramer_rao(snr_db):
     for name, values in (("parabolic", est.parabolic), ("phase_slope", est.phase_slope)):
         ratio = np.std(values - delay) / bound
         assert 0.8 < ratio < 2.0, (name, snr_db, ratio)
-        assert abs(np.mean(values) - delay) < 3 * bound  # no bias beyond the spread
+        # no bias beyond the spread: the mean of 400 trials has a standard error of bound/20 or less, so
+        # 3 x bound is a loose limit (common practice, no source)
+        assert abs(np.mean(values) - delay) < 3 * bound

@@ -1,8 +1,10 @@
 """Campaign runner: reproducible bytes, resume after interruption, joblib and Dask equal the serial run."""
 from __future__ import annotations
 
+import hashlib
 import json
 import os
+import re
 from pathlib import Path
 
 import numpy as np
@@ -11,6 +13,7 @@ import pytest
 from scipy.stats import qmc
 
 import waneguide.simulation.campaign as campaign_mod
+from waneguide.core.errors import InputError, MissingInputError
 from waneguide.features.io import read_capture
 from waneguide.simulation.campaign import load_campaign, plan_campaign, run_campaign
 from waneguide.simulation.export import export_campaign_captures
@@ -91,7 +94,7 @@ def test_same_seed_same_bytes_different_seed_differs(reference, tmp_path, family
 
 def test_joblib_workers_write_the_same_bytes(reference, tmp_path, family_fb2):
     out = tmp_path / "par"
-    run_campaign(family_fb2, N_CASES, out, seed=7, chunk_size=CHUNK, workers=2, progress=False)
+    run_campaign(family_fb2, N_CASES, out, seed=7, chunk_size=CHUNK, n_jobs=2, progress=False)
     assert _files(out) == _files(reference)
 
 
@@ -167,19 +170,51 @@ def test_other_campaigns_and_foreign_folders_are_never_overwritten(reference, tm
         run_campaign(family_fb2, 4, tmp_path / "x", seed=-1, progress=False)
 
 
-def test_verify_detects_a_changed_chunk(reference, tmp_path, family_fb2):
+def _flip_a_byte(path: Path) -> None:
+    data = bytearray(path.read_bytes())
+    data[-100] ^= 0xFF  # inside the last array's data: the zip still opens, the numbers changed
+    path.write_bytes(bytes(data))
+
+
+def test_verify_detects_a_changed_chunk(reference, tmp_path):
     import shutil
 
     copy = tmp_path / "copy"
     shutil.copytree(reference, copy)
     camp = load_campaign(copy)
     camp.verify()
-    p = copy / "chunks" / "chunk_00001.npz"
-    data = bytearray(p.read_bytes())
-    data[-100] ^= 0xFF
-    p.write_bytes(bytes(data))
-    with pytest.raises(ValueError, match="does not match its digest"):
+    _flip_a_byte(copy / "chunks" / "chunk_00001.npz")
+    with pytest.raises(InputError, match="chunk_00001.npz does not match its SHA-256"):
         camp.verify()
+
+
+def test_a_tampered_chunk_is_refused_when_read_and_the_fix_repairs_it(reference, tmp_path, family_fb2):
+    import shutil
+
+    copy = tmp_path / "tampered"
+    shutil.copytree(reference, copy)
+    chunk = copy / "chunks" / "chunk_00002.npz"
+    expected = json.loads((copy / "manifest.json").read_text())["chunks"][2]["sha256"]
+    _flip_a_byte(chunk)
+    found = hashlib.sha256(chunk.read_bytes()).hexdigest()  # the outside reference for the digest
+    camp = load_campaign(copy)
+    camp.capture(0)  # chunk 0 is sound
+    message = (rf"{re.escape(str(chunk))} does not match its SHA-256 in manifest.json \(expected {expected}, "
+               rf"found {found}\).*Delete that chunk and re-run `waneguide simulate` with the same arguments")
+    with pytest.raises(InputError, match=message):
+        camp.capture(2 * CHUNK)  # first case of chunk 2
+    with pytest.raises(InputError, match=message):
+        list(camp.iter_chunks())
+    # rerunning over the tampered chunk refuses to take it over
+    with pytest.raises(InputError, match=message):
+        run_campaign(family_fb2, N_CASES, copy, seed=7, chunk_size=CHUNK, progress=False)
+    # the fix the message gives: delete the chunk and rerun with the same arguments
+    chunk.unlink()
+    with pytest.raises(MissingInputError, match="chunk_00002.npz is missing. Re-run `waneguide simulate`"):
+        load_campaign(copy)
+    camp = run_campaign(family_fb2, N_CASES, copy, seed=7, chunk_size=CHUNK, progress=False)
+    assert camp.run_info["computed_chunks"] == 1 and camp.run_info["reused_chunks"] == 4
+    assert _files(copy) == _files(reference)
 
 
 def test_plan_is_space_filling_and_respects_the_domain(family_fb2):

@@ -37,7 +37,7 @@ def work(tmp_path_factory):
     from waneguide.simulation.export import export_campaign_captures
 
     w = tmp_path_factory.mktemp("badinput")
-    run_campaign(FAMILY_FB2, 24, w / "camp", seed=3, workers=1, progress=False)
+    run_campaign(FAMILY_FB2, 24, w / "camp", seed=3, n_jobs=1, progress=False)
     idx = export_campaign_captures(w / "camp", w / "caps", cases=range(4), fmt="csv")
     caps = w / "caps"
     first, base = caps / idx["file"].iloc[0], caps / idx["baseline_file"].iloc[0]
@@ -50,7 +50,7 @@ def work(tmp_path_factory):
     (w / "junk.mat").write_bytes(b"garbage")
     # a capture without sample_rate_hz (allowed: the rate then comes from the time column)
     lines = first.read_text().splitlines(keepends=True)
-    (w / "no_rate.csv").write_text("".join(l for l in lines if not l.startswith("# sample_rate_hz")))
+    (w / "no_rate.csv").write_text("".join(ln for ln in lines if not ln.startswith("# sample_rate_hz")))
     # measured-cases CSVs next to the captures
     rows = [(idx["file"].iloc[i], idx["max_loss_pct"].iloc[i], idx["max_loss_mm"].iloc[i], idx["mean_loss_pct"].iloc[i])
             for i in range(4)]
@@ -65,7 +65,7 @@ def work(tmp_path_factory):
 
 
 FAM = str(FAMILY_FB2)
-TRAIN = ("--no-tracking", "--no-shift-study", "--quiet")
+TRAIN = ("--no-tracking", "--no-shift-study", "--no-progress")
 
 # (argv with {w} = work folder, {caps}, {first}, {base}; the words the one line must contain)
 CASES = [

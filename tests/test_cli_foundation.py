@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import io
+from pathlib import Path
 from contextlib import redirect_stderr, redirect_stdout
 
 import numpy as np
@@ -60,3 +61,41 @@ def test_dispersion_bad_input_is_one_line_exit_2(tmp_path, argv, needle):
     assert needle in err
     assert "Traceback" not in err
     assert not (tmp_path / "x.csv").exists()
+
+
+@pytest.mark.parametrize("where", ["before", "after"])
+def test_debug_is_accepted_before_and_after_the_subcommand(where, tmp_path):
+    # --debug re-raises the library's own error instead of printing one line (the CLI contract
+    # of this project's README; common practice for command-line tools, no source)
+    argv = ["dispersion", "--material", "unobtainium", "--thickness-mm", "1", "--fmax-khz", "100",
+            "--out", str(tmp_path / "x.csv")]
+    argv = ["--debug", *argv] if where == "before" else [*argv, "--debug"]
+    with pytest.raises(ValueError, match="known materials"):
+        run_cli(*argv)
+
+
+def test_no_progress_is_accepted_by_every_subcommand():
+    import argparse
+
+    from waneguide.cli.main import build_parser
+
+    parser = build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    assert len(sub.choices) >= 8  # materials dispersion simulate features train score audit demo
+    for name, p in sub.choices.items():
+        flags = {s for a in p._actions for s in a.option_strings}
+        assert {"--no-progress", "--debug"} <= flags, name
+
+
+def test_closed_pipe_ends_quietly():
+    # `waneguide materials --csv | head -1`: the reader closes the pipe early; the command must end
+    # without a BrokenPipeError traceback (Python docs, signal module, "Note on SIGPIPE").
+    import shutil
+    import subprocess
+    import sys
+
+    exe = shutil.which("waneguide") or str(Path(sys.executable).with_name("waneguide"))
+    proc = subprocess.run(f"'{exe}' materials --csv | head -1", shell=True, capture_output=True, text=True,
+                          timeout=120)
+    assert proc.stdout.startswith("name,youngs_modulus_pa")
+    assert "Traceback" not in proc.stderr and "BrokenPipe" not in proc.stderr, proc.stderr

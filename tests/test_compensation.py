@@ -37,7 +37,8 @@ def a0_case(family_fb2):
 def test_a0_packet_is_dispersed_before_compensation(a0_case):
     fam, fs, pre, f0, cyc, k, burst, y, L, vg0 = a0_case
     # sanity of the synthetic case: A0 at 0.3 MHz mm over 300 mm widens the 5-cycle
-    # burst's envelope by about 11 % (so the 10 % recompression check below is not void)
+    # burst's envelope by about 11 % (regression value of this code), so the 10 % recompression check
+    # below is not void; 8 % leaves room below it
     assert _fwhm_s(hilbert_envelope(y), fs) > 1.08 * _fwhm_s(hilbert_envelope(burst), fs)
 
 
@@ -46,7 +47,10 @@ def test_wilcox_recompresses_to_excitation_duration(a0_case, distance_m):
     # issue 4 check (Wilcox 2003, IEEE Trans. UFFC 50(4) 419): the compensated packet
     # has the excitation's duration (distance width / group velocity at f0) within 10 %,
     # and sits at the propagation distance + v_g x burst centre (module docstring, eq. 2).
-    # At 1 m the raw A0 packet is far wider than 10 % over the excitation.
+    # At 1 m the raw A0 packet is far wider than 10 % over the excitation. The 10 % is the acceptance
+    # figure of issue 4 (a project requirement); recompression must also remove at least two thirds of
+    # the widening, and the position holds to 1 % (common practice, no source; this code gives 0.6 % in
+    # width and 1e-4 in position, regression values).
     fam, fs, pre, f0, cyc, k, burst, _, _, vg0 = a0_case
     L = distance_m
     y = dispersive_propagate(burst, fs, F_GRID, k, L)
@@ -63,7 +67,10 @@ def test_wilcox_recompresses_to_excitation_duration(a0_case, distance_m):
 
 def test_extractor_operator_agrees_with_literal_wilcox(family_fb2):
     # the extractor's direct evaluation of eq. (2) and the FFT/interpolation form of the
-    # paper must give the same packet: position within 1 mm, width within 3 %
+    # paper must give the same packet: position within 1 mm, width within 3 % (the literal form
+    # interpolates the spectrum linearly; both limits common practice, no source); this code gives
+    # 0.24 mm and 0.2 % (regression values). The packet sits at the path length to 2 mm (0.7 % of
+    # 300 mm; common practice, no source).
     fam = family_fb2
     y = synth_record(fam, amplitudes=(0.0, 1.0))
     ex = FeatureExtractor(fam)
@@ -82,7 +89,9 @@ def test_extractor_operator_agrees_with_literal_wilcox(family_fb2):
 @pytest.mark.parametrize("true_fraction", [1.0, 0.9, 0.8, 0.7])
 def test_sharpest_thickness_search_returns_true_thickness(family_fb2, true_fraction):
     # issue 4 check: a packet dispersed along A0 of a plate of known thickness over the
-    # known path is refocused best by that thickness's curve -- within 1 %
+    # known path is refocused best by that thickness's curve -- within 1 % (the acceptance figure of
+    # issue 4, a project requirement), with a focus above 0.95 (1 = perfectly recompressed; common
+    # practice, no source; this code gives > 0.9999, a regression value)
     fam = family_fb2
     d_true = fam.nominal_thickness_m * true_fraction
     y = synth_record(fam, thickness_m=d_true, amplitudes=(0.3, 1.0), noise_v=1e-3, rng=5)

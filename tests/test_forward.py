@@ -16,7 +16,8 @@ from scipy.signal import hilbert
 from waneguide.features.capture import Capture
 from waneguide.features.dispersion import fundamental_dispersion
 from waneguide.features.family import family_from_mapping
-from waneguide.simulation.forward import ForwardModel, simulate_capture, tone_burst
+from waneguide.features.excitation import tone_burst
+from waneguide.simulation.forward import ForwardModel, simulate_capture
 
 # everything that is not propagation switched off
 OFF = dict(snr_db=None, jitter_s=0.0, attenuation_db_per_m=0.0, echo_reflection=0.0, crosstalk_db=None,
@@ -270,7 +271,7 @@ def test_crosstalk_sits_at_the_trigger_and_jitter_moves_everything(family_fb2):
     exc = family_fb2.excitation
     level_db = -20.0
     x = fm.simulate(_flat(fm), 20.0, modes=(), **{**OFF, "crosstalk_db": level_db})
-    burst = tone_burst(exc.centre_frequency_hz, exc.cycles, fm.sample_rate_hz, exc.window)
+    burst = tone_burst(exc.centre_frequency_hz, exc.cycles, fm.sample_rate_hz, window=exc.window)
     i0 = int(round(fm.pretrigger_s * fm.sample_rate_hz))
     seg = x[i0:i0 + burst.size]
     expected = burst / np.abs(burst).max() * fm.reference_peak_v * 10 ** (level_db / 20)

@@ -1,14 +1,16 @@
-"""LightGBM wrappers: quantiles of a known distribution, physics monotonicity, native persistence."""
+"""LightGBM wrapper: physics monotonicity on a probe grid, native persistence, refused settings.
+
+Outside references: LightGBM's own guarantee that monotone constraints hold on every split
+(LightGBM docs, "monotone_constraints"), and LightGBM's text model format.
+"""
 from __future__ import annotations
 
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import stats
 
 from waneguide.models.gbm import (
     MonotoneGBMRegressor,
-    QuantileGBMRegressor,
     monotonicity_audit,
     resolve_monotone_constraints,
 )
@@ -16,7 +18,8 @@ from waneguide.models.gbm import (
 
 def test_rules_resolve_by_name():
     names = ["a0_shift_xcorr_s", "s0_shift_xcorr_s", "a0_s0_differential_shift_s", "a0_thermal_shift_s"]
-    assert resolve_monotone_constraints(names, (("a0_shift_*", 1), ("a0_s0_differential_shift_s", 1)), 4) == [1, 0, 1, 0]
+    rules = (("a0_shift_*", 1), ("a0_s0_differential_shift_s", 1))
+    assert resolve_monotone_constraints(names, rules, 4) == [1, 0, 1, 0]
     assert resolve_monotone_constraints(None, (("a0_*", 1),), 2) == [0, 0]
     with pytest.raises(ValueError, match="sign must be"):
         resolve_monotone_constraints(names, (("a0_*", 2),), 4)
@@ -32,31 +35,13 @@ def test_monotonicity_audit_on_probe_grid():
     con = MonotoneGBMRegressor(n_estimators=200, random_state=0).fit(X, y)
     free = MonotoneGBMRegressor(n_estimators=200, monotone_rules=(), random_state=0).fit(X, y)
     assert con.monotone_constraints_ == [1, 0]
-    # LightGBM enforces the constraint on every split: exactly zero violation (float round-off only)
+    # LightGBM enforces the constraint on every split (LightGBM docs, "monotone_constraints"): zero
+    # violation up to float round-off of sums of leaf values ~1; 1e-12 is common practice, no source
     assert monotonicity_audit(con.predict, X, "a0_delay_s", +1, n_grid=60, rng=1) <= 1e-12
-    # the audit can fail: the unconstrained model follows the wiggle downwards
+    # the audit can fail: the unconstrained model follows the wiggle downwards. The truth's slope
+    # 1 + 3.6 cos(12 x) reaches -2.6, a drop of 2.6 / 59 = 0.044 per grid step; the fitted trees drop
+    # in larger steps. The bound 0.05 is a regression value of this code
     assert monotonicity_audit(free.predict, X, "a0_delay_s", +1, n_grid=60, rng=1) > 0.05
-
-
-def test_quantiles_of_known_heteroscedastic_distribution():
-    """y = x + (0.2 + 0.5 x) Z, Z ~ N(0,1): true q_tau(x) = x + (0.2 + 0.5 x) Phi^-1(tau)."""
-    rng = np.random.default_rng(1)
-    n = 20_000
-    x = rng.uniform(0, 2, n)
-    y = x + (0.2 + 0.5 * x) * rng.normal(size=n)
-    qs = (0.1, 0.5, 0.9)
-    m = QuantileGBMRegressor(quantiles=qs, n_estimators=200, num_leaves=15, min_child_samples=50,
-                             random_state=0).fit(x[:, None], y)
-    grid = np.linspace(0.1, 1.9, 19)
-    pred = m.predict_quantiles(grid[:, None])
-    true = grid[:, None] + (0.2 + 0.5 * grid[:, None]) * stats.norm.ppf(qs)[None, :]
-    # error in units of the local noise sd s(x) = 0.2 + 0.5 x. Typical error < 0.1 s: the sampling
-    # sd of a quantile from the ~1,000 points a leaf sees is ~0.05 s; single grid points (near the
-    # edges, where trees are step functions) may reach 0.5 s.
-    rel = np.abs(pred - true) / (0.2 + 0.5 * grid[:, None])
-    assert np.median(rel) < 0.1
-    assert np.max(rel) < 0.5
-    assert np.all(np.diff(m.predict_quantiles(rng.uniform(-1, 3, (500, 1))), axis=1) >= 0)  # never cross
 
 
 def test_native_text_round_trip():
@@ -67,11 +52,20 @@ def test_native_text_round_trip():
     text = m.to_text()
     assert text.startswith("tree")  # LightGBM's own text format, not a pickle
     m2 = MonotoneGBMRegressor.from_text(text, params=m.get_params(), feature_names=list(X.columns))
+    # LightGBM writes leaf values with round-trip precision: identical predictions (exact equality)
     np.testing.assert_array_equal(m.predict(X), m2.predict(X))
     assert m2.monotone_constraints_ == [1, 0, 0]
+    # and the rebuilt model is the booster LightGBM itself reads from that text
+    import lightgbm as lgb
+
+    np.testing.assert_array_equal(m2.predict(X), lgb.Booster(model_str=text).predict(X.to_numpy()))
 
 
 def test_quantile_objective_with_constraints_refused():
     X = pd.DataFrame({"a0_delay_s": np.arange(50.0)})
     with pytest.raises(ValueError, match="does not support monotone constraints with the quantile objective"):
         MonotoneGBMRegressor(objective="quantile").fit(X, np.arange(50.0))
+    # without constraints the quantile objective is LightGBM's: the fit works
+    m = MonotoneGBMRegressor(objective="quantile", monotone_rules=(), n_estimators=5, min_child_samples=5).fit(
+        X, np.arange(50.0))
+    assert m.monotone_constraints_ == [0]

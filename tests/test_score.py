@@ -23,7 +23,7 @@ import pytest
 from scipy import stats
 
 from waneguide.operations.history import History
-from waneguide.operations.scoring import SCORE_OUTPUT_COLUMNS, score_captures
+from waneguide.operations.scoring import SCORE_OUTPUT_COLUMNS, load_model, score_captures
 from waneguide.cli.main import main
 from waneguide.core.caution import CAUTION
 
@@ -43,8 +43,8 @@ def make_bundle(family, work: Path, *, n_cases: int = 400) -> Path:
     from waneguide.training.pipeline import TrainConfig, train_model
 
     camp = work / "campaign"
-    run_campaign(family, n_cases, camp, seed=1, workers=1, progress=False)
-    res = train_model(family, camp, work / "models", random_state=0, progress=False, track=False,
+    run_campaign(family, n_cases, camp, seed=1, n_jobs=1, progress=False)
+    res = train_model(family, camp, work / "models", random_state=0, progress=False,
                       shift_study=False, config=TrainConfig(n_estimators=150, gp_points=200, n_jobs=1))
     return Path(res.bundle_path)
 
@@ -132,6 +132,17 @@ def test_rescoring_counts_nothing_twice(setup, tmp_path):
     assert a["max_loss_pct"] == b["max_loss_pct"]
 
 
+def test_limit_defaults_to_the_family_file(setup, tmp_path):
+    # the demo family states [limits] wall_loss_limit_pct = 15; without --limit-pct that limit is used
+    # (issue 9, "--limit-pct defaulting to a limit the family file may state")
+    bundle = load_model(setup["bundle"])
+    assert bundle.family.limits.wall_loss_limit_pct == 15.0
+    default = score_captures(bundle, setup["caps"], db_url=f"sqlite:///{tmp_path / 'a.db'}")
+    given = score_captures(bundle, setup["caps"], db_url=f"sqlite:///{tmp_path / 'b.db'}", limit_pct=15.0)
+    assert (default["limit_pct"] == 15.0).all()
+    np.testing.assert_array_equal(default["exceed_probability"], given["exceed_probability"])
+
+
 def test_parallel_joblib_gives_the_serial_numbers(setup, tmp_path):
     serial = score_captures(setup["bundle"], setup["caps"], db_url=f"sqlite:///{tmp_path / 'a.db'}", chunk_size=3)
     par = score_captures(setup["bundle"], setup["caps"], db_url=f"sqlite:///{tmp_path / 'b.db'}", n_jobs=2,
@@ -195,7 +206,7 @@ def test_refusals_are_clear(setup, tmp_path, family_st3):
     assert rc == 2 and err.startswith("waneguide score: error:") and "Traceback" not in err
     assert History(db).count() == 0
     # bad limit
-    with pytest.raises(ValueError, match="limit_pct must be"):
+    with pytest.raises(ValueError, match=r"limit_pct \(--limit-pct\) must be"):
         score_captures(setup["bundle"], caps, db_url=db, limit_pct=150)
 
 

@@ -35,10 +35,13 @@ def _bandlimited_stretch(x, fs, pre, a, origin, start, stop):
 def test_thermal_model_matches_low_frequency_s0_coefficient(family_fb2):
     # S0 well below the first cut-off moves at the plate velocity sqrt(E/(rho(1-nu^2)))
     # (Graff 1975, sec. 8.1), so (1/t) dt/dT -> -(alpha + E'/E)/2 (temperature module
-    # docstring). At 0.3 MHz mm S0 is slightly dispersive: 5 % tolerance.
+    # docstring). At 0.3 MHz mm S0 is slightly dispersive: 5 % tolerance (common practice, no source;
+    # this code is 0.8 % off, a regression value).
     tm = ThermalModel(family_fb2)
     expected = s0_low_frequency_coefficient_per_k(family_fb2.build_material())
-    assert expected == pytest.approx(2.35e-4, rel=0.02)  # aluminium: 2.3e-5/K expansion, E' = -36 MPa/K
+    # 2024-T3 (ASM Handbook vol. 2, from memory): alpha = 23.2e-6 /K, E = 73.1 GPa, E' = -36 MPa/K, so
+    # -(23.2e-6 - 36e6 / 73.1e9) / 2 = 2.346e-4 /K by hand; rel 1e-3 covers the quoted digits
+    assert expected == pytest.approx(2.346e-4, rel=1e-3)
     assert tm.relative_coefficient_per_k("S0") == pytest.approx(expected, rel=0.05)
     # warmer is slower for both modes
     assert tm.shift_per_k("S0") > 0 and tm.shift_per_k("A0") > 0
@@ -46,7 +49,11 @@ def test_thermal_model_matches_low_frequency_s0_coefficient(family_fb2):
 
 def test_stretch_removes_uniform_temperature_change(family_fb2):
     # issue 4 check: a uniform temperature change applied as a stretch is removed to a
-    # residual well below (here < 1/20 of) what a 10 % thinning leaves
+    # residual well below what a 10 % thinning leaves (issue 4 asks for "well below"; the factor 1/20 is
+    # common practice, no source). The stretch factor is recovered to 2e-5, the S0 thermal stretch of
+    # 0.1 K (2.35e-4 /K x 0.1 K; the 0.1 K is common practice, no source); the unstretched residual above
+    # 0.05 shows the stretch mattered and the stretched one below 1e-3 that it is removed (both common
+    # practice, no source).
     fam = family_fb2
     fs, pre = fam.acquisition.sample_rate_hz, fam.acquisition.pretrigger_s
     base = synth_record(fam)
@@ -60,7 +67,7 @@ def test_stretch_removes_uniform_temperature_change(family_fb2):
     thin = synth_record(fam, thickness_m=0.9 * fam.nominal_thickness_m)
     kw = dict(sample_rate_hz=fs, pretrigger_s=pre, start=i0, stop=i1, max_stretch=0.025, origin_s=t_c)
     r = baseline_stretch(np.stack([warm, thin]), np.stack([base, base]), **kw)
-    assert r.factor[0] == pytest.approx(a_true, abs=2e-5)  # 2e-5 = 0.1 K equivalent
+    assert r.factor[0] == pytest.approx(a_true, abs=2e-5)
     assert r.unstretched_residual[0] > 0.05  # the stretch mattered
     assert r.residual[0] < r.residual[1] / 20
     assert r.residual[0] < 1e-3
@@ -69,7 +76,8 @@ def test_stretch_removes_uniform_temperature_change(family_fb2):
 def test_physical_temperature_change_sign_and_size(family_fb2):
     # issue 4 check: an S0-only record built at T and T + 20 K from the material model
     # (E(T), rho(T), expansion of path and thickness) stretches by the S0 coefficient
-    # per kelvin: sign positive (slower when warmer), size within 5 % (S0 dispersion)
+    # per kelvin: sign positive (slower when warmer), size within 5 % (S0 dispersion at 0.3 MHz mm;
+    # common practice, no source)
     fam = family_fb2
     fs, pre = fam.acquisition.sample_rate_hz, fam.acquisition.pretrigger_s
     base = synth_record(fam, temperature_c=10.0, amplitudes=(1.0, 0.0))
@@ -87,7 +95,8 @@ def test_physical_temperature_change_sign_and_size(family_fb2):
 
 def test_optimal_baseline_selection_picks_nearest_temperature_state(family_fb2):
     # Croxford et al. 2010 (OBS): among baselines at 0, 20, 40 degC the one whose
-    # stretched residual is smallest is chosen; for a 22 degC capture that is 20 degC
+    # stretched residual is smallest is chosen; for a 22 degC capture that is 20 degC (no threshold:
+    # the ordering of the residuals is checked)
     fam = family_fb2
     fs, pre = fam.acquisition.sample_rate_hz, fam.acquisition.pretrigger_s
     temps = [0.0, 20.0, 40.0]
@@ -105,7 +114,9 @@ def test_optimal_baseline_selection_picks_nearest_temperature_state(family_fb2):
 def test_differential_shift_cancels_temperature(family_fb2):
     # A0 - r S0 (r from the thermal model) cancels a pure temperature change to a small
     # fraction of what 10 % thinning gives (thinning moves A0, S0 barely: S0 is nearly
-    # blind to thickness at low frequency-thickness, Rose 1999 ch. 8)
+    # blind to thickness at low frequency-thickness, Rose 1999 ch. 8). Limits: a fifth of the raw
+    # thermal A0 shift, a twentieth of the thinning signal, a tenth for the model-corrected shift
+    # (common practice, no source; this code gives 0.08, 0.007 and 0.06, regression values)
     fam = family_fb2
     base = synth_record(fam, temperature_c=20.0, noise_v=1e-3, rng=1)
     warm = synth_record(fam, temperature_c=35.0, noise_v=1e-3, rng=2)

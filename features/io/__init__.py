@@ -11,7 +11,8 @@
 
 The metadata set and the unit conversion are shared (:mod:`features.io._meta`);
 the full description is docs/capture-format.md. Errors are the named classes of
-:mod:`features.io.errors`, all subclasses of ``ValueError``.
+:mod:`features.io.errors`, all subclasses of :class:`waneguide.core.errors.InputError`;
+a file or folder that does not exist raises :class:`waneguide.core.errors.MissingInputError`.
 """
 from __future__ import annotations
 
@@ -19,6 +20,7 @@ import os
 from pathlib import Path
 from typing import Iterable
 
+from waneguide.core.errors import InputError, MissingInputError
 from waneguide.features.capture import Capture
 from waneguide.features.io._meta import UNITS, from_volts, to_volts
 from waneguide.features.io.csv_format import read_csv_capture, write_csv_capture
@@ -47,6 +49,7 @@ __all__ = [
     "TimeAxisError",
     "UnknownUnitsError",
     "UnsupportedFormatError",
+    "capture_files",
     "from_volts",
     "read_capture",
     "read_captures",
@@ -77,7 +80,7 @@ def _suffix(path: Path) -> str:
     if suf not in _READERS:
         raise UnsupportedFormatError(
             f"{path}: unsupported capture format {path.suffix or '(no suffix)'!r}; "
-            f"accepted: {', '.join(CAPTURE_SUFFIXES)}."
+            f"accepted: {', '.join(CAPTURE_SUFFIXES)} (docs/capture-format.md). Convert the file to one of them."
         )
     return suf
 
@@ -87,7 +90,7 @@ def read_capture(path: str | os.PathLike) -> Capture:
     p = Path(path)
     suf = _suffix(p)
     if not p.is_file():
-        raise FileNotFoundError(f"capture file {str(p)!r} does not exist.")
+        raise MissingInputError(f"capture file {str(p)!r} does not exist (or is not a file); check the path.")
     return _READERS[suf](p)
 
 
@@ -109,19 +112,20 @@ def capture_files(dir_or_files: str | os.PathLike | Iterable[str | os.PathLike])
         if p.is_dir():
             found = sorted(f for f in p.iterdir() if f.is_file() and f.suffix.lower() in _READERS)
             if not found:
-                raise ValueError(
-                    f"directory {str(p)!r} holds no capture files ({', '.join(CAPTURE_SUFFIXES)})."
+                raise InputError(
+                    f"directory {str(p)!r} holds no capture files: a capture file ends in "
+                    f"{', '.join(CAPTURE_SUFFIXES)} (not recursive). Give the folder that holds the captures."
                 )
             files.extend(found)
         else:
             if not p.exists():
-                raise FileNotFoundError(f"capture file or folder {str(p)!r} does not exist.")
+                raise MissingInputError(f"capture file or folder {str(p)!r} does not exist; check the path.")
             _suffix(p)
             if not p.is_file():
-                raise FileNotFoundError(f"capture file {str(p)!r} does not exist.")
+                raise MissingInputError(f"capture file {str(p)!r} is not a regular file; give a capture file or a folder.")
             files.append(p)
     if not files:
-        raise ValueError("no capture files given.")
+        raise InputError("no capture files given: name at least one capture file or folder.")
     return files
 
 

@@ -27,6 +27,9 @@ UNITS = {"V": 1.0, "mV": 1e-3, "counts": None}
 
 _FLOAT_KEYS = ("temperature_c", "sample_rate_hz", "pretrigger_s", "excitation_khz", "cycles", "counts_scale_v")
 _REQUIRED = ("path_id", "sample_rate_hz")
+#: An accepted value of each numeric key, quoted in error messages.
+_EXAMPLES = {"temperature_c": "21.5", "sample_rate_hz": "10e6", "pretrigger_s": "2e-05", "excitation_khz": "150",
+             "cycles": "5", "counts_scale_v": "3.0e-5"}
 
 
 def _units_factor(units: str, counts_scale_v: float | None, where: str) -> float:
@@ -71,19 +74,30 @@ def _as_float(value: Any, key: str, where: str) -> float | None:
         try:
             value = float(text)
         except ValueError:
-            raise InvalidFieldError(f"{where}: {key} must be a number; got {value!r}.") from None
+            raise InvalidFieldError(_not_a_number(where, key, value)) from None
     try:
         arr = np.asarray(value, dtype=float).ravel()
     except (TypeError, ValueError):
-        raise InvalidFieldError(f"{where}: {key} must be a number; got {value!r}.") from None
+        raise InvalidFieldError(_not_a_number(where, key, value)) from None
     if arr.size != 1:
-        raise InvalidFieldError(f"{where}: {key} must be a single number; got {arr.size} values.")
+        raise InvalidFieldError(
+            f"{where}: {key} must be a single number; got {arr.size} values. Store one value "
+            f"(e.g. {key} = {_EXAMPLES[key]})."
+        )
     out = float(arr[0])
     if math.isnan(out):
         return None
     if not math.isfinite(out):
-        raise InvalidFieldError(f"{where}: {key} must be finite; got {out!r}.")
+        raise InvalidFieldError(
+            f"{where}: {key} must be a finite number; got {out!r}. Store the real value "
+            f"(e.g. {key} = {_EXAMPLES[key]}) or leave the key out."
+        )
     return out
+
+
+def _not_a_number(where: str, key: str, value: Any) -> str:
+    return (f"{where}: {key} must be a number; got {value!r}. Accepted: a plain number such as "
+            f"{key} = {_EXAMPLES[key]} (no units or text).")
 
 
 def _as_text(value: Any) -> str | None:
@@ -106,11 +120,15 @@ def capture_from_fields(values: Any, meta: Mapping[str, Any], *, where: str) -> 
     """
     arr = np.asarray(values)
     if arr.dtype.kind not in "iufb":
-        raise EmptyDataError(f"{where}: amplitude must be numeric; got dtype {arr.dtype}.")
+        raise EmptyDataError(
+            f"{where}: amplitude must be numeric (integers or floats); got dtype {arr.dtype}. "
+            "Store the samples as numbers."
+        )
     arr = np.squeeze(arr)
     if arr.ndim != 1 or arr.size == 0:
         raise EmptyDataError(
-            f"{where}: amplitude must be a non-empty 1-D array of samples; got shape {np.shape(values)}."
+            f"{where}: amplitude must be a non-empty 1-D array of samples; got shape {np.shape(values)}. "
+            "Store one capture per file, as a vector."
         )
     meta = dict(meta)
     for key in _REQUIRED:
@@ -121,14 +139,21 @@ def capture_from_fields(values: Any, meta: Mapping[str, Any], *, where: str) -> 
     fs = nums["sample_rate_hz"]
     if fs is None or fs <= 0:
         raise InvalidFieldError(
-            f"{where}: sample_rate_hz must be a positive number of Hz; got {meta.get('sample_rate_hz')!r}."
+            f"{where}: sample_rate_hz must be a positive number of Hz; got {meta.get('sample_rate_hz')!r}. "
+            "Give the digitiser's rate, e.g. sample_rate_hz = 10e6."
         )
     pre = nums["pretrigger_s"] if nums["pretrigger_s"] is not None else 0.0
     if pre < 0:
-        raise InvalidFieldError(f"{where}: pretrigger_s must be >= 0 s; got {pre!r}.")
+        raise InvalidFieldError(
+            f"{where}: pretrigger_s must be >= 0 s (time recorded before the trigger); got {pre!r}. "
+            "Give it as a positive number of seconds, e.g. pretrigger_s = 2e-05."
+        )
     for key in ("excitation_khz", "cycles", "counts_scale_v"):
         if nums[key] is not None and nums[key] <= 0:
-            raise InvalidFieldError(f"{where}: {key} must be positive; got {nums[key]!r}.")
+            raise InvalidFieldError(
+                f"{where}: {key} must be positive; got {nums[key]!r}. Give the real value "
+                f"(e.g. {key} = {_EXAMPLES[key]}) or leave the key out."
+            )
     units = _as_text(meta.get("units")) or "V"
     units = units.strip()
     amplitude_v = to_volts(arr, units, nums["counts_scale_v"], where=where)

@@ -1,10 +1,14 @@
 """Named errors of the capture readers.
 
-Every error is a :class:`ValueError` (so the CLI turns it into one line on stderr)
-and names the file, the field or part at fault, the rule, and what was received.
-Tests and callers can catch the specific class.
+Every error is a :class:`waneguide.core.errors.InputError` (so also a ``ValueError``, and
+the CLI turns it into one line on stderr) and names the file, the field or line at fault,
+the rule, what was received and what is accepted. Tests and callers can catch the
+specific class. A capture file that does not exist raises
+:class:`waneguide.core.errors.MissingInputError` instead.
 """
 from __future__ import annotations
+
+from waneguide.core.errors import InputError
 
 __all__ = [
     "CaptureFileError",
@@ -18,7 +22,7 @@ __all__ = [
 ]
 
 
-class CaptureFileError(ValueError):
+class CaptureFileError(InputError):
     """Base class: a capture file that cannot be read as documented in docs/capture-format.md."""
 
     code = "capture_file_error"

@@ -14,9 +14,13 @@ import os
 import time
 from pathlib import Path
 
+import h5py
 import numpy as np
+import scipy.io
+from scipy.io.matlab import MatReadError
 
 from waneguide.core.atomic import atomic_path
+from waneguide.core.errors import InputError
 from waneguide.features.capture import Capture
 from waneguide.features.io._meta import capture_from_fields, fields_from_capture
 from waneguide.features.io.errors import CorruptFileError, InvalidFieldError, MissingFieldError
@@ -25,21 +29,19 @@ __all__ = ["read_mat_capture", "write_mat_capture"]
 
 
 def _read_v5(path, where):
-    import scipy.io
-    from scipy.io.matlab import MatReadError
-
     try:
         data = scipy.io.loadmat(path, squeeze_me=True, chars_as_strings=True)
     except NotImplementedError:
         return None  # v7.3: HDF5
     except (MatReadError, ValueError, TypeError, OSError, IndexError, EOFError) as exc:
-        raise CorruptFileError(f"{where}: not a readable MATLAB .mat file ({exc}).") from None
+        raise CorruptFileError(
+            f"{where}: not a readable MATLAB .mat file ({exc}); accepted: MATLAB v5 or v7.3 files written "
+            "by `save`. Save the capture again, or export it as .csv, .h5 or .npz."
+        ) from None
     return {k: v for k, v in data.items() if not k.startswith("__")}
 
 
 def _decode_h5(node):
-    import h5py
-
     if not isinstance(node, h5py.Dataset):
         return None
     value = node[()]
@@ -56,12 +58,13 @@ def _decode_h5(node):
 
 
 def _read_v73(path, where):
-    import h5py
-
     try:
         fh = h5py.File(path, "r")
     except OSError as exc:
-        raise CorruptFileError(f"{where}: not a readable MATLAB v7.3 (HDF5) file ({exc}).") from None
+        raise CorruptFileError(
+            f"{where}: not a readable MATLAB v7.3 (HDF5) file ({exc}); accepted: MATLAB v5 or v7.3 files "
+            "written by `save`. Save the capture again, or export it as .csv, .h5 or .npz."
+        ) from None
     with fh:
         return {k: _decode_h5(fh[k]) for k in fh.keys() if not k.startswith("#")}
 
@@ -73,13 +76,19 @@ def read_mat_capture(path: str | os.PathLike) -> Capture:
     if data is None:
         data = _read_v73(path, where)
     if "amplitude" not in data or data["amplitude"] is None:
-        raise MissingFieldError(f"{where}: the file has no 'amplitude' variable; found {sorted(data)}.")
+        raise MissingFieldError(
+            f"{where}: the file has no 'amplitude' variable (required: the samples as a vector); found "
+            f"{sorted(data)}. Save the samples as `amplitude`."
+        )
     values = data.pop("amplitude")
     data.pop("time_s", None)
     meta = {}
     for k, v in data.items():
         if isinstance(v, np.ndarray) and v.dtype == object:
-            raise InvalidFieldError(f"{where}: variable {k!r} must be a number or text, not a cell or struct.")
+            raise InvalidFieldError(
+                f"{where}: variable {k!r} must be a number or text; got a cell array or struct. "
+                "Store it as a scalar or a char array."
+            )
         meta[k] = v.item() if isinstance(v, np.ndarray) and v.ndim == 0 else v
     return capture_from_fields(values, meta, where=where)
 
@@ -95,8 +104,6 @@ def _mat73_userblock() -> bytes:
 
 
 def _write_v73(tmp: Path, stored: np.ndarray, meta: dict, counts: bool) -> None:
-    import h5py
-
     with h5py.File(tmp, "w", userblock_size=512) as fh:
         def put(name, value):
             if isinstance(value, str):
@@ -118,10 +125,8 @@ def _write_v73(tmp: Path, stored: np.ndarray, meta: dict, counts: bool) -> None:
 
 def write_mat_capture(capture: Capture, path: str | os.PathLike, *, version: str = "5") -> Path:
     """Write ``capture`` as a ``.mat`` file (``version`` ``"5"`` or ``"7.3"``), atomically."""
-    import scipy.io
-
     if version not in ("5", "7.3"):
-        raise ValueError(f"MAT version must be '5' or '7.3'; got {version!r}.")
+        raise InputError(f"{path}: MAT version must be '5' or '7.3'; got {version!r}. Pass version=\"5\" or \"7.3\".")
     stored, meta = fields_from_capture(capture, where=str(path))
     with atomic_path(path, suffix=".mat") as tmp:
         if version == "5":

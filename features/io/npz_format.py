@@ -20,18 +20,31 @@ __all__ = ["read_npz_capture", "write_npz_capture"]
 
 
 def read_npz_capture(path: str | os.PathLike) -> Capture:
+    """Read a ``.npz`` capture; amplitudes converted to volts."""
     where = str(path)
     if not zipfile.is_zipfile(path):
-        raise CorruptFileError(f"{where}: not a .npz archive (a .npz file is a zip of .npy arrays).")
+        raise CorruptFileError(
+            f"{where}: not a .npz archive; accepted: a zip of .npy arrays as `np.savez` writes it. "
+            "Write the capture again with np.savez, or export it as .csv, .mat or .h5."
+        )
     try:
         with np.load(path, allow_pickle=False) as data:
             arrays = {k: data[k] for k in data.files}
     except (zipfile.BadZipFile, OSError, EOFError) as exc:
-        raise CorruptFileError(f"{where}: not a readable .npz archive ({exc}).") from None
+        raise CorruptFileError(
+            f"{where}: not a readable .npz archive ({exc}); accepted: a zip of .npy arrays as `np.savez` "
+            "writes it. Write the capture again."
+        ) from None
     except ValueError as exc:  # object arrays with allow_pickle=False
-        raise InvalidFieldError(f"{where}: arrays must be plain numbers or text, not Python objects ({exc}).") from None
+        raise InvalidFieldError(
+            f"{where}: arrays must be plain numbers or text; got a Python object array ({exc}). "
+            "Store each field as a number or a string (np.savez(path, amplitude=y, path_id='P01', ...))."
+        ) from None
     if "amplitude" not in arrays:
-        raise MissingFieldError(f"{where}: the archive has no 'amplitude' array; found {sorted(arrays)}.")
+        raise MissingFieldError(
+            f"{where}: the archive has no 'amplitude' array (required: the samples, 1-D); found "
+            f"{sorted(arrays)}. Store the samples as `amplitude`."
+        )
     values = arrays.pop("amplitude")
     arrays.pop("time_s", None)
     meta = {}
@@ -41,6 +54,7 @@ def read_npz_capture(path: str | os.PathLike) -> Capture:
 
 
 def write_npz_capture(capture: Capture, path: str | os.PathLike) -> Path:
+    """Write ``capture`` as a ``.npz`` archive (atomically), amplitudes in ``capture.units``."""
     stored, meta = fields_from_capture(capture, where=str(path))
     arrays = {"amplitude": stored.astype(np.int64) if capture.units == "counts" else stored}
     for k, v in meta.items():

@@ -1,9 +1,9 @@
 """``waneguide audit``: compare a model in service with hands-on thickness readings."""
 from __future__ import annotations
 
-ORDER = 60
-
 from pathlib import Path
+
+ORDER = 60
 
 
 def register(sub) -> None:
@@ -27,14 +27,19 @@ def register(sub) -> None:
     p.add_argument("--window-days", type=float, default=7.0, metavar="D",
                    help="match a reading to a capture at most D days away (default 7)")
     p.add_argument("--limit-pct", type=float, default=None, metavar="L",
-                   help="limit line in the report [%% of nominal] (default: the limit used when scoring)")
+                   help="limit line in the report [%% of nominal] (default: the family file's [limits] wall_loss_limit_pct, else the limit used when scoring)")
     p.add_argument("--tracking-uri", default=None, metavar="URI",
                    help="MLflow tracking URI (default sqlite:///mlflow.db)")
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
-    from waneguide.operations.audit import AuditSettings, check_audit_options, format_audit, run_audit
+    from waneguide.operations.audit import (
+        AuditSettings,
+        check_audit_options,
+        format_audit,
+        run_audit,
+    )
     from waneguide.operations.scoring import load_model
 
     check_audit_options(limit_pct=args.limit_pct, report_path=args.report)  # before loading the model

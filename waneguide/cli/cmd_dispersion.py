@@ -1,9 +1,9 @@
 """``waneguide dispersion``: Rayleigh-Lamb curves of a free plate to CSV (and a plot)."""
 from __future__ import annotations
 
-ORDER = 11
-
 from pathlib import Path
+
+ORDER = 11
 
 
 def register(sub) -> None:
@@ -22,7 +22,11 @@ def register(sub) -> None:
 
 def run(args) -> int:
     from waneguide.core.atomic import check_output_path
-    from waneguide.features.curves_io import compute_dispersion_table, plot_dispersion, write_dispersion_csv
+    from waneguide.features.curves_io import (
+        compute_dispersion_table,
+        plot_dispersion,
+        write_dispersion_csv,
+    )
 
     check_output_path(args.out, "curves CSV (--out)")  # both outputs checked before any is written
     if args.plot is not None:

@@ -1,9 +1,9 @@
 """``waneguide features``: captures + baselines -> feature table (Parquet)."""
 from __future__ import annotations
 
-ORDER = 30
-
 from pathlib import Path
+
+ORDER = 30
 
 
 def register(sub) -> None:

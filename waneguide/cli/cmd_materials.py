@@ -1,9 +1,9 @@
 """``waneguide materials``: list the built-in materials."""
 from __future__ import annotations
 
-ORDER = 10
-
 import sys
+
+ORDER = 10
 
 MATERIAL_COLUMNS = ("name", "youngs_modulus_pa", "poisson_ratio", "density_kg_m3", "cl_m_s", "ct_m_s", "source")
 

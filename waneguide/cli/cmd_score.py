@@ -1,9 +1,9 @@
 """``waneguide score``: estimates for incoming captures, into the history database."""
 from __future__ import annotations
 
-ORDER = 50
-
 from pathlib import Path
+
+ORDER = 50
 
 
 def register(sub) -> None:
@@ -21,7 +21,7 @@ def register(sub) -> None:
                    help="baseline captures (sound metal) of every path; default: a 'baselines' folder inside "
                         "or beside the captures folder")
     p.add_argument("--limit-pct", type=float, default=None, metavar="L",
-                   help="limit on the maximum wall loss [%% of nominal thickness] for the exceedance probability")
+                   help="limit on the maximum wall loss [%% of nominal thickness] for the exceedance probability (default: the family file's [limits] wall_loss_limit_pct, if stated)")
     p.add_argument("--db", default=None, metavar="URL",
                    help="history database, any SQLAlchemy URL (default sqlite:///waneguide-history.db, "
                         "or $WANEGUIDE_DB)")
@@ -33,13 +33,16 @@ def register(sub) -> None:
                    help="captures per task and per database transaction (default 32)")
     p.add_argument("--tracking-uri", default=None, metavar="URI",
                    help="MLflow tracking URI for registry names (default sqlite:///mlflow.db)")
-    p.add_argument("--no-progress", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
     from waneguide.core.atomic import check_output_path
-    from waneguide.operations.scoring import format_scores, score_captures, write_scores_csv
+    from waneguide.operations.scoring import (
+        format_scores,
+        score_captures,
+        write_scores_csv,
+    )
 
     if args.out is not None:  # fail before scoring, not after
         check_output_path(args.out, "results CSV (--out)")

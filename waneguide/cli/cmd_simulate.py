@@ -1,9 +1,9 @@
 """``waneguide simulate``: a simulated thinning campaign of one stiffener family."""
 from __future__ import annotations
 
-ORDER = 20
-
 from pathlib import Path
+
+ORDER = 20
 
 
 def register(sub) -> None:
@@ -13,20 +13,21 @@ def register(sub) -> None:
     p.add_argument("--out", required=True, type=Path, metavar="DIR",
                    help="campaign folder (new, or an interrupted run of the same campaign to resume)")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0); same seed, same bytes")
-    p.add_argument("--workers", type=int, default=1, metavar="K", help="processes on this machine (default 1)")
+    p.add_argument("--jobs", type=int, default=1, metavar="N",
+                   help="worker processes on this machine (default 1: in this process; -1: every core)")
     p.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                   help="Dask scheduler address, e.g. tcp://127.0.0.1:8786 (overrides --workers)")
+                   help="Dask scheduler address, e.g. tcp://127.0.0.1:8786, or 'local' (overrides --jobs)")
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
-    from waneguide.simulation.campaign import run_campaign
-
     import sys
 
+    from waneguide.simulation.campaign import run_campaign
+
     try:
-        camp = run_campaign(args.family, args.cases, args.out, seed=args.seed, workers=args.workers,
-                            scheduler=args.scheduler, progress=True)
+        camp = run_campaign(args.family, args.cases, args.out, seed=args.seed, n_jobs=args.jobs,
+                            scheduler=args.scheduler, progress=not args.no_progress)
     except KeyboardInterrupt:
         print(f"finished chunks are kept in {args.out}; rerun the same command to resume", file=sys.stderr)
         raise

@@ -6,36 +6,56 @@ captures, the corrosion and the hands-on readings. It describes no real structur
 
 Steps (:func:`run_demo`):
 
-1. simulate a training campaign for the family (:func:`training.campaign.run_campaign`);
-2. train a model bundle on it (:func:`training.pipeline.train_model`);
+1. simulate a training campaign for the family (:func:`waneguide.simulation.campaign.run_campaign`);
+2. train a model bundle on it, log and register it in the demo's own MLflow store
+   (:func:`waneguide.operations.train.train_and_register`);
 3. make a season of measured-like captures with the forward model
-   (:func:`training.forward.simulate_capture`): weekly captures on every path with
+   (:func:`waneguide.simulation.forward.simulate_capture`): weekly captures on every path with
    temperature swings on all of them; a flat-bottom corrosion patch grows slowly on
    path P02 and a pit on path P04; plus baselines at three temperatures per path, one
    capture after the receiver was re-bonded 30 mm further along (a 10 % longer path: out
    of family) and one from a dead channel (rejected by the quality gate);
-4. score the season into a history database (:func:`models.scoring.score_captures`);
+4. score the season into a history database (:func:`waneguide.operations.scoring.score_captures`);
 5. write invented hands-on readings (thickness scans along the corroding paths, spot
-   checks on a sound one) and audit the model against them (:func:`models.audit.run_audit`);
+   checks on a sound one) and audit the model against them (:func:`waneguide.operations.audit.run_audit`);
 6. write the self-contained HTML report.
+
+Everything the demo writes goes under its output folder: the campaign, the model store, the
+MLflow store ``mlflow.db`` with its artifacts in ``mlflow-artifacts/``, the history database,
+the season, the readings and the report. Nothing is written into the working directory.
 """
 from __future__ import annotations
 
+import logging
 import time
-from dataclasses import dataclass
+import warnings
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
+from tqdm.auto import tqdm
 
 from waneguide.configs import config_path
+from waneguide.core.atomic import atomic_path
 from waneguide.core.caution import CAUTION
+from waneguide.features.family import family_from_mapping, load_family
+from waneguide.features.io import write_capture
+from waneguide.operations.audit import format_audit, run_audit
+from waneguide.operations.history import History
+from waneguide.operations.readings import write_readings
+from waneguide.operations.scoring import format_scores, score_captures, write_scores_csv
+from waneguide.operations.train import train_and_register
+from waneguide.simulation.campaign import run_campaign
+from waneguide.simulation.forward import simulate_capture
+from waneguide.simulation.profiles import flat_patch_profile, pit_profile, pristine_profile
+from waneguide.training.pipeline import TrainConfig, format_summary
 
 __all__ = ["DemoScenario", "run_demo", "scenario"]
 
 FAMILY_FILE = config_path("families", "demo_fb2.toml")
 START_DATE = np.datetime64("2025-03-03T08:00")
-LIMIT_PCT = 15.0
 
 
 @dataclass(frozen=True)
@@ -77,8 +97,6 @@ def _iso(week: int, *, days: float = 0.0) -> str:
 
 def _profile(family, path_id: str, week: int, sc: DemoScenario):
     """Thickness profile of a path in a given week (invented corrosion growth)."""
-    from waneguide.simulation.profiles import flat_patch_profile, pit_profile, pristine_profile
-
     L = family.path.transducer_spacing_mm * 1e-3
     t0 = family.nominal_thickness_m
     x = np.linspace(0.0, L, 601)
@@ -103,12 +121,6 @@ def _temperature(week: int, rng) -> float:
 
 def make_season(family, folder: Path, sc: DemoScenario, *, progress: bool = True) -> dict[str, Any]:
     """Write the season's captures and baselines; returns the truth table (one row per capture)."""
-    import pandas as pd
-    from dataclasses import replace
-
-    from waneguide.features.io import write_capture
-    from waneguide.simulation.forward import simulate_capture
-
     rng = np.random.default_rng(sc.seed)
     caps = folder / "captures"
     base = folder / "baselines"
@@ -126,12 +138,8 @@ def make_season(family, folder: Path, sc: DemoScenario, *, progress: bool = True
     items = [(w, pid) for w in range(sc.n_weeks) for pid in sc.paths]
     bar = None
     if progress:
-        from tqdm.auto import tqdm
-
         bar = tqdm(total=len(items), desc="season captures", unit="capture", leave=False)
     odd_week = sc.n_weeks - 4
-    from waneguide.features.family import family_from_mapping
-
     data = family.model_dump(mode="json")
     data["path"]["transducer_spacing_mm"] = round(family.path.transducer_spacing_mm * 1.1, 3)
     moved = family_from_mapping(data, where="demo: moved receiver")
@@ -175,10 +183,6 @@ def make_season(family, folder: Path, sc: DemoScenario, *, progress: bool = True
 def make_readings(family, path: Path, sc: DemoScenario, *, seed: int | None = None) -> Path:
     """Invented hands-on readings: UT thickness scans (5 mm pitch) on the corroding paths,
     spot checks on a sound path. Gauge scatter 0.02 mm (stated uncertainty)."""
-    import pandas as pd
-
-    from waneguide.operations.readings import write_readings
-
     rng = np.random.default_rng(sc.seed + 1 if seed is None else seed)
     L_mm = family.path.transducer_spacing_mm
     rows = []
@@ -205,19 +209,17 @@ def make_readings(family, path: Path, sc: DemoScenario, *, seed: int | None = No
     return write_readings(df, path)
 
 
-def _train(family, campaign_dir: Path, out: Path, *, tracking_uri: str, progress: bool, quick: bool, workers: int):
-    """train_model with settings sized for the demo's time budget (stated in the model's metrics)."""
-    from waneguide.training.pipeline import TrainConfig, train_model
-
+def _train(family, campaign_dir: Path, out: Path, *, tracking_uri: str, progress: bool, quick: bool, n_jobs: int):
+    """train_and_register with settings sized for the demo's time budget (stated in the model's metrics)."""
     # LightGBM on one thread: on these small tables threads cost more than they give (measured: 10 s vs
     # 120 s for the quick demo on a busy 2-core machine)
     cfg = TrainConfig(gp_points=150 if quick else 300, n_estimators=120 if quick else 200, n_jobs=1)
-    res = train_model(family, campaign_dir, out, tracking_uri=tracking_uri, random_state=0, progress=progress,
-                      config=cfg, shift_study=not quick, n_jobs=workers)
+    res = train_and_register(family, campaign_dir, out, tracking_uri=tracking_uri, random_state=0,
+                             progress=progress, config=cfg, shift_study=not quick, n_jobs=n_jobs)
     return Path(res.bundle_path), res
 
 
-def run_demo(out_dir: str | Path, *, quick: bool = False, progress: bool = True, workers: int = 2) -> dict[str, Path]:
+def run_demo(out_dir: str | Path, *, quick: bool = False, progress: bool = True, n_jobs: int = 2) -> dict[str, Path]:
     """Run the whole invented demo into ``out_dir``; returns the paths it wrote.
 
     Parameters
@@ -229,34 +231,24 @@ def run_demo(out_dir: str | Path, *, quick: bool = False, progress: bool = True,
         The reduced scenario (fewer cases, paths and weeks) used by the tests.
     progress : bool
         Show progress bars.
-    workers : int
-        Processes for the campaign and for scoring.
+    n_jobs : int
+        Processes for the campaign, the feature extraction and scoring.
     """
-    import warnings
-
     with warnings.catch_warnings():
         # scikit-learn's robust covariance warns on rank-deficient simulated features; the
         # mismatch detector handles that (ridge precision), so the warning is noise here
         warnings.filterwarnings("ignore", category=UserWarning, module="sklearn")
         warnings.filterwarnings("ignore", message=".*type hints.*", category=UserWarning)
-        import logging
-
         mlflow_log = logging.getLogger("mlflow")
         level = mlflow_log.level
         mlflow_log.setLevel(logging.WARNING)
         try:
-            return _run(out_dir, quick=quick, progress=progress, workers=workers)
+            return _run(out_dir, quick=quick, progress=progress, n_jobs=n_jobs)
         finally:
             mlflow_log.setLevel(level)
 
 
-def _run(out_dir, *, quick: bool, progress: bool, workers: int) -> dict[str, Path]:
-    from waneguide.features.family import load_family
-    from waneguide.operations.audit import format_audit, run_audit
-    from waneguide.operations.history import History
-    from waneguide.operations.scoring import format_scores, score_captures
-    from waneguide.simulation.campaign import run_campaign
-
+def _run(out_dir, *, quick: bool, progress: bool, n_jobs: int) -> dict[str, Path]:
     t_start = time.time()
     out = Path(out_dir).resolve()
     out.mkdir(parents=True, exist_ok=True)
@@ -273,31 +265,25 @@ def _run(out_dir, *, quick: bool, progress: bool, workers: int) -> dict[str, Pat
 
     step(1, f"simulating a training campaign of {sc.n_cases} cases")
     camp_dir = out / "campaign"
-    run_campaign(family, sc.n_cases, camp_dir, seed=sc.seed, workers=workers, progress=progress)
+    run_campaign(family, sc.n_cases, camp_dir, seed=sc.seed, n_jobs=n_jobs, progress=progress)
 
     step(2, "training the model (LightGBM + GP, conformal bands, mismatch detector)")
     models_dir = out / "models"
     bundle_path, train_res = _train(family, camp_dir, models_dir, tracking_uri=tracking_uri, progress=progress,
-                                    quick=quick, workers=workers)
-    from waneguide.training.pipeline import format_summary
-
+                                    quick=quick, n_jobs=n_jobs)
     _say("      " + format_summary(train_res).replace("\n", "\n      "))
 
     step(3, f"simulating a season of measured-like captures: {len(sc.paths)} paths x {sc.n_weeks} weeks, "
             f"temperature swings on all, corrosion growing on {', '.join(sc.growth)}")
     season = make_season(family, out / "season", sc, progress=progress)
     truth_csv = out / "season" / "truth.csv"
-    from waneguide.core.atomic import atomic_path
-
     with atomic_path(truth_csv) as tmp:
         season["truth"].to_csv(tmp, index=False)
 
     step(4, f"scoring the season into the history ({db_url})")
-    scores = score_captures(bundle_path, season["captures"], baselines=season["baselines"], limit_pct=LIMIT_PCT,
-                            db_url=db_url, n_jobs=workers, progress=progress)
+    scores = score_captures(bundle_path, season["captures"], baselines=season["baselines"],
+                            db_url=db_url, n_jobs=n_jobs, progress=progress, tracking_uri=tracking_uri)
     results_csv = out / "scores.csv"
-    from waneguide.operations.scoring import write_scores_csv
-
     write_scores_csv(scores, results_csv)
     latest = scores.sort_values("captured_at").groupby("path_id").tail(1)
     _say(format_scores(latest).rsplit("\n", 1)[0])
@@ -305,7 +291,8 @@ def _run(out_dir, *, quick: bool, progress: bool, workers: int) -> dict[str, Pat
     step(5, "auditing the model against invented hands-on readings")
     readings_csv = make_readings(family, out / "readings.csv", sc)
     report = out / "report.html"
-    result = run_audit(bundle_path, readings_csv, db_url=db_url, report_path=report, limit_pct=LIMIT_PCT)
+    result = run_audit(bundle_path, readings_csv, db_url=db_url, report_path=report,
+                       tracking_uri=tracking_uri)
     _say(format_audit(result).rsplit("\n", 1)[0])
 
     step(6, "report written")
@@ -321,6 +308,7 @@ def _run(out_dir, *, quick: bool, progress: bool, workers: int) -> dict[str, Pat
         "season_captures": season["captures"],
         "season_truth_csv": truth_csv,
         "mlflow_db": out / "mlflow.db",
+        "mlflow_artifacts": out / "mlflow-artifacts",
     }
     _say(f"\nDone in {time.time() - t_start:.0f} s. {n_hist} captures in the history; verdict: {result.verdict}.")
     _say("Outputs:")

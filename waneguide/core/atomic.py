@@ -12,6 +12,8 @@ import tempfile
 from pathlib import Path
 from typing import Iterator
 
+from .errors import InputError
+
 __all__ = ["atomic_path", "atomic_write_bytes", "atomic_write_text", "check_output_dir", "check_output_path", "file_sha256"]
 
 
@@ -20,7 +22,7 @@ def _check_parents(target: Path, what: str) -> None:
     for parent in target.parents:
         if parent.exists():
             if not parent.is_dir():
-                raise ValueError(f"{what} {str(target)!r} lies under {str(parent)!r}, which is a file, not a folder; "
+                raise InputError(f"{what} {str(target)!r} lies under {str(parent)!r}, which is a file, not a folder; "
                                  "give a path inside a folder.")
             break
 
@@ -38,7 +40,7 @@ def check_output_path(target: str | os.PathLike, what: str = "output file") -> P
     """
     target = Path(target)
     if target.is_dir():
-        raise ValueError(f"{what} {str(target)!r} is an existing folder; give a file name (e.g. {str(target / 'out')!r}).")
+        raise InputError(f"{what} {str(target)!r} is an existing folder; give a file name (e.g. {str(target / 'out')!r}).")
     _check_parents(target, what)
     return target
 
@@ -47,7 +49,7 @@ def check_output_dir(target: str | os.PathLike, what: str = "output folder") -> 
     """Refuse an output folder path that is an existing file or lies under a file."""
     target = Path(target)
     if target.exists() and not target.is_dir():
-        raise ValueError(f"{what} {str(target)!r} is an existing file, not a folder; give a folder path.")
+        raise InputError(f"{what} {str(target)!r} is an existing file, not a folder; give a folder path.")
     _check_parents(target, what)
     return target
 

@@ -9,12 +9,19 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-__all__ = ["offline_defaults", "DEFAULT_HISTORY_FILE", "DEFAULT_TRACKING_FILE", "default_tracking_uri"]
+__all__ = [
+    "offline_defaults", "DEFAULT_HISTORY_FILE", "DEFAULT_TRACKING_FILE", "DEFAULT_MODEL_CACHE_DIR",
+    "default_tracking_uri",
+]
 
 #: SQLite history database used when ``--db`` is not given (in the working directory).
 DEFAULT_HISTORY_FILE = "waneguide-history.db"
 #: SQLite MLflow store used when ``--tracking-uri`` is not given (in the working directory).
 DEFAULT_TRACKING_FILE = "mlflow.db"
+#: Folder (in the working directory) for registered bundles downloaded from a tracking *server*;
+#: with a SQLite store they go beside the database instead
+#: (:func:`waneguide.operations.tracking.local_model_cache`).
+DEFAULT_MODEL_CACHE_DIR = ".waneguide-models"
 
 
 def offline_defaults() -> None:

@@ -10,6 +10,8 @@ from typing import Any
 
 import numpy as np
 
+from .errors import InputError
+
 __all__ = [
     "validate_positive_scalar",
     "validate_positive_array",
@@ -36,17 +38,17 @@ def validate_positive_scalar(value: Any, name: str, *, unit: str = "", hint: str
 
     Raises
     ------
-    ValueError
+    InputError
         Naming ``name``, the rule, the value received and ``hint``.
     """
     try:
         out = float(value)
     except (TypeError, ValueError):
-        raise ValueError(
+        raise InputError(
             f"{name} must be a positive number{_unit(unit)}; got {value!r}.{_hint(hint)}"
         ) from None
     if not math.isfinite(out) or out <= 0.0:
-        raise ValueError(
+        raise InputError(
             f"{name} must be a positive finite number{_unit(unit)}; got {out!r}.{_hint(hint)}"
         )
     return out
@@ -56,12 +58,12 @@ def validate_positive_array(value: Any, name: str, *, unit: str = "", hint: str 
     """Return a 1-D float array whose entries are all positive and finite."""
     arr = np.atleast_1d(np.asarray(value, dtype=float))
     if arr.ndim != 1 or arr.size == 0:
-        raise ValueError(
+        raise InputError(
             f"{name} must be a non-empty scalar or 1-D array{_unit(unit)}; "
             f"got shape {arr.shape}.{_hint(hint)}"
         )
     if not np.all(np.isfinite(arr)) or np.any(arr <= 0):
-        raise ValueError(
+        raise InputError(
             f"{name} must contain only positive finite values{_unit(unit)}; "
             f"got {_describe(arr)}.{_hint(hint)}"
         )
@@ -72,9 +74,9 @@ def validate_finite_array(value: Any, name: str, *, ndim: int | None = None) -> 
     """Return a float array with no NaN or inf, optionally of a given ndim."""
     arr = np.asarray(value, dtype=float)
     if ndim is not None and arr.ndim != ndim:
-        raise ValueError(f"{name} must be {ndim}-D; got shape {arr.shape}.")
+        raise InputError(f"{name} must be {ndim}-D; got shape {arr.shape}.")
     if not np.all(np.isfinite(arr)):
-        raise ValueError(f"{name} must not contain NaN or inf values.")
+        raise InputError(f"{name} must not contain NaN or inf values.")
     return arr
 
 

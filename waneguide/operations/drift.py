@@ -47,6 +47,10 @@ from dataclasses import dataclass, field
 from typing import Sequence
 
 import numpy as np
+import pandas as pd
+from scipy import stats
+
+from waneguide.core.errors import InputError
 
 __all__ = [
     "PageHinkley",
@@ -133,9 +137,9 @@ class PageHinkley:
 
     def _check(self) -> None:
         if not (math.isfinite(self.delta) and self.delta >= 0):
-            raise ValueError(f"PageHinkley delta must be a finite number >= 0; got {self.delta!r}.")
+            raise InputError(f"PageHinkley delta must be a finite number >= 0; got {self.delta!r}.")
         if not (math.isfinite(self.lambda_) and self.lambda_ > 0):
-            raise ValueError(f"PageHinkley lambda_ must be a positive finite number; got {self.lambda_!r}.")
+            raise InputError(f"PageHinkley lambda_ must be a positive finite number; got {self.lambda_!r}.")
 
     def statistics(self, x) -> tuple[np.ndarray, np.ndarray]:
         """Both one-sided statistics for a stream or a batch of streams.
@@ -152,9 +156,9 @@ class PageHinkley:
         self._check()
         x = np.asarray(x, dtype=float)
         if x.ndim not in (1, 2):
-            raise ValueError(f"stream must be 1-D (one stream) or 2-D (streams x time); got shape {x.shape}.")
+            raise InputError(f"stream must be 1-D (one stream) or 2-D (streams x time); got shape {x.shape}.")
         if not np.all(np.isfinite(x)):
-            raise ValueError("stream contains NaN or inf; drop unmatched readings before running the detector.")
+            raise InputError("stream contains NaN or inf; drop unmatched readings before running the detector.")
         xs = np.atleast_2d(x)
         n = xs.shape[1]
         if self.mu0 is None:
@@ -187,7 +191,7 @@ class PageHinkley:
         self._check()
         xs = np.atleast_2d(np.asarray(x, dtype=float))
         if xs.ndim != 2:
-            raise ValueError(f"streams must be 2-D (streams x time); got shape {xs.shape}.")
+            raise InputError(f"streams must be 2-D (streams x time); got shape {xs.shape}.")
         r, n = xs.shape
         first = np.full(r, -1, dtype=np.int64)
         g_up = np.zeros(r)
@@ -215,7 +219,7 @@ class PageHinkley:
         """Run over one stream and report the first alarm."""
         x = np.asarray(x, dtype=float)
         if x.ndim != 1:
-            raise ValueError(f"run() takes one stream (1-D); got shape {x.shape}. Use first_alarm() for a batch.")
+            raise InputError(f"run() takes one stream (1-D); got shape {x.shape}. Use first_alarm() for a batch.")
         up, dn = self.statistics(x)
         hit_up = np.flatnonzero(up >= self.lambda_)
         hit_dn = np.flatnonzero(dn >= self.lambda_) if self.two_sided else np.array([], dtype=int)
@@ -318,11 +322,9 @@ def feature_drift(reference, recent, columns: Sequence[str] | None = None, *, al
         Columns ``feature, n_reference, n_recent, ks_statistic, p_value, q_value, psi,
         psi_band, drifted``, sorted by ``q_value``.
     """
-    import pandas as pd
-    from scipy import stats
 
     if not 0 < alpha < 1:
-        raise ValueError(f"alpha must lie in (0, 1); got {alpha!r}.")
+        raise InputError(f"alpha must lie in (0, 1); got {alpha!r}.")
     if columns is None:
         columns = [c for c in reference.columns
                    if c in recent.columns and pd.api.types.is_numeric_dtype(reference[c])]

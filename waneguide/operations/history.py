@@ -34,9 +34,18 @@ import math
 import os
 import time
 from datetime import datetime, timezone
+from pathlib import Path
 from typing import Any, Iterable, Mapping
 
 import numpy as np
+import pandas as pd
+import sqlalchemy as sa
+from sqlalchemy import event
+from sqlalchemy.dialects.postgresql import insert as postgresql_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
+
+from waneguide.core.errors import InputError
+from waneguide.core.settings import DEFAULT_HISTORY_FILE
 
 __all__ = [
     "DEFAULT_DB_URL",
@@ -47,7 +56,7 @@ __all__ = [
 ]
 
 #: Default history location (an SQLite file in the working directory).
-DEFAULT_DB_URL = "sqlite:///waneguide-history.db"
+DEFAULT_DB_URL = f"sqlite:///{DEFAULT_HISTORY_FILE}"
 
 #: Environment variable that overrides the default URL (the ``--db`` option wins over it).
 DB_URL_ENV = "WANEGUIDE_DB"
@@ -101,7 +110,6 @@ def resolve_db_url(db_url: str | None) -> str:
 
 def sqlite_file(url: str):
     """The file of an ``sqlite:///PATH`` URL as a Path (None for other databases or in-memory)."""
-    from pathlib import Path
 
     if not url.startswith("sqlite"):
         return None
@@ -210,14 +218,12 @@ class History:
         return self._engine
 
     def _make_engine(self):
-        import sqlalchemy as sa
-        from sqlalchemy import event
 
         if not self.is_sqlite:
             try:
                 return sa.create_engine(self.url, pool_pre_ping=True)
             except Exception as exc:  # noqa: BLE001 - a bad URL or a missing driver
-                raise ValueError(
+                raise InputError(
                     f"cannot open history database {self._safe_url()!r}: {exc}. "
                     "Give an SQLAlchemy URL such as sqlite:///waneguide-history.db or "
                     "postgresql+psycopg://user@127.0.0.1/waneguide (with its driver installed)."
@@ -227,7 +233,7 @@ class History:
         if not memory:
             parent = os.path.dirname(os.path.abspath(url.database))
             if not os.path.isdir(parent):
-                raise ValueError(
+                raise InputError(
                     f"history database folder {parent!r} does not exist (from --db {self.url!r}). "
                     "Create the folder or give another path."
                 )
@@ -262,14 +268,11 @@ class History:
 
     def _safe_url(self) -> str:
         try:
-            import sqlalchemy as sa
-
             return sa.engine.make_url(self.url).render_as_string(hide_password=True)
         except Exception:  # noqa: BLE001
             return "<unparseable URL>"
 
     def _define_tables(self) -> dict:
-        import sqlalchemy as sa
 
         md = sa.MetaData()
         types = {"str": sa.String(255), "text": sa.Text(), "float": sa.Float(), "bool": sa.Boolean(), "int": sa.Integer()}
@@ -323,7 +326,7 @@ class History:
             rec = {name: _clean(kind, row.get(name)) for name, kind in _SCORE_SCHEMA.items()}
             for key in ("content_hash", "model_version"):
                 if not rec[key]:
-                    raise ValueError(f"history row {i}: {key} is required; got {row.get(key)!r}.")
+                    raise InputError(f"history row {i}: {key} is required; got {row.get(key)!r}.")
             rec["scored_at"] = rec["scored_at"] or stamp
             rec["status"] = rec["status"] or "scored"
             out.append(rec)
@@ -372,16 +375,12 @@ class History:
     def _insert_ignore(self, table):
         name = self.engine.dialect.name
         if name == "sqlite":
-            from sqlalchemy.dialects.sqlite import insert
-
-            return insert(table).on_conflict_do_nothing(index_elements=["content_hash", "model_version"])
+            return sqlite_insert(table).on_conflict_do_nothing(index_elements=["content_hash", "model_version"])
         if name == "postgresql":
-            from sqlalchemy.dialects.postgresql import insert
-
-            return insert(table).on_conflict_do_nothing(index_elements=["content_hash", "model_version"])
+            return postgresql_insert(table).on_conflict_do_nothing(index_elements=["content_hash", "model_version"])
         if name in ("mysql", "mariadb"):
             return table.insert().prefix_with("IGNORE")
-        raise ValueError(f"history database dialect {name!r} is not supported; use SQLite or PostgreSQL.")
+        raise InputError(f"history database dialect {name!r} is not supported; use SQLite or PostgreSQL.")
 
     @staticmethod
     def _is_busy(exc: Exception) -> bool:
@@ -390,7 +389,6 @@ class History:
 
     def scored_hashes(self, model_version: str) -> set[str]:
         """Content hashes already scored by ``model_version``."""
-        import sqlalchemy as sa
 
         t = self._tables_ready()["scores"]
         with self.engine.connect() as conn:
@@ -398,7 +396,6 @@ class History:
             return {r[0] for r in res}
 
     def count(self, *, model_version: str | None = None) -> int:
-        import sqlalchemy as sa
 
         t = self._tables_ready()["scores"]
         q = sa.select(sa.func.count()).select_from(t)
@@ -413,8 +410,6 @@ class History:
 
         ``captured_at`` stays the ISO text that was stored; ``in_family`` is boolean.
         """
-        import pandas as pd
-        import sqlalchemy as sa
 
         t = self._tables_ready()["scores"]
         cols = [t.c.id] + [t.c[n] for n in SCORE_COLUMNS if with_features or n != "features_json"]
@@ -443,7 +438,6 @@ class History:
 
     def features(self, *, model_version: str | None = None, content_hashes: Iterable[str] | None = None):
         """Stored numeric features, one row per score row (index ``content_hash``)."""
-        import pandas as pd
 
         df = self.scores(model_version=model_version, content_hashes=content_hashes, with_features=True)
         recs = []
@@ -474,8 +468,6 @@ class History:
             return int(res.inserted_primary_key[0])
 
     def audits(self):
-        import pandas as pd
-        import sqlalchemy as sa
 
         t = self._tables_ready()["audits"]
         with self.engine.connect() as conn:

@@ -24,10 +24,14 @@ received and the rule.
 """
 from __future__ import annotations
 
-from datetime import datetime
-
 import math
+from datetime import datetime
 from pathlib import Path
+
+import pandas as pd
+
+from waneguide.core.atomic import atomic_path
+from waneguide.core.errors import InputError
 
 __all__ = ["READING_COLUMNS", "REQUIRED_READING_COLUMNS", "read_readings", "write_readings"]
 
@@ -54,27 +58,26 @@ def read_readings(path: str | Path):
     ValueError
         Missing file or column, empty file, or a bad value (naming file, line and column).
     """
-    import pandas as pd
 
     p = Path(path)
     if not p.is_file():
-        raise ValueError(f"readings file {str(p)!r} does not exist. Give the CSV of hands-on readings.")
+        raise InputError(f"readings file {str(p)!r} does not exist. Give the CSV of hands-on readings.")
     try:
         raw = pd.read_csv(p, dtype=str, keep_default_na=False, skipinitialspace=True, comment=None)
     except pd.errors.EmptyDataError:
-        raise ValueError(f"{p}: the readings file is empty; expected a header line "
+        raise InputError(f"{p}: the readings file is empty; expected a header line "
                          f"{','.join(READING_COLUMNS)} and one reading per line.") from None
     except pd.errors.ParserError as exc:
-        raise ValueError(f"{p}: not a readable CSV file ({exc}).") from None
+        raise InputError(f"{p}: not a readable CSV file ({exc}).") from None
     raw.columns = [str(c).strip() for c in raw.columns]
     missing = [c for c in REQUIRED_READING_COLUMNS if c not in raw.columns]
     if missing:
-        raise ValueError(
+        raise InputError(
             f"{p}: missing column(s) {', '.join(missing)}; the header must name "
             f"{', '.join(REQUIRED_READING_COLUMNS)} (and optionally uncertainty_mm); got {list(raw.columns)}."
         )
     if raw.empty:
-        raise ValueError(f"{p}: no readings below the header line.")
+        raise InputError(f"{p}: no readings below the header line.")
     raw = raw.apply(lambda s: s.str.strip())
     n = len(raw)
     lines = list(range(2, n + 2))
@@ -135,7 +138,6 @@ def _number(path, line: int, column: str, text: str, *, allow_zero: bool) -> flo
 
 def write_readings(readings, path: str | Path) -> Path:
     """Write readings (a DataFrame with :data:`READING_COLUMNS`) as CSV, atomically."""
-    from waneguide.core.atomic import atomic_path
 
     df = readings[list(READING_COLUMNS)].copy()
     df["date"] = [d.isoformat() if hasattr(d, "isoformat") else str(d) for d in df["date"]]

@@ -7,7 +7,7 @@ whose only artifact is the bundle directory; it is logged with *explicit* pip re
 ``bundle_path`` (the local bundle directory it was made from), so :func:`resolve_model`
 finds the bundle without copying when it is still there, and downloads it otherwise.
 
-MLflow is imported lazily; see :mod:`training.tracking` for the store defaults
+See :mod:`waneguide.operations.tracking` for the store defaults
 (``sqlite:///mlflow.db`` in the working directory, telemetry off).
 """
 from __future__ import annotations
@@ -15,7 +15,16 @@ from __future__ import annotations
 import re
 import tempfile
 import warnings
+from importlib import metadata
 from pathlib import Path
+
+import mlflow
+from mlflow.exceptions import MlflowException
+from mlflow.tracking import MlflowClient
+
+from waneguide.core.errors import InputError
+from waneguide.models.bundle import load_bundle
+from waneguide.operations.tracking import experiment_name, init_tracking, local_model_cache
 
 __all__ = ["DEFAULT_ALIAS", "registered_name", "register_bundle", "resolve_model", "set_alias"]
 
@@ -46,7 +55,6 @@ def registered_name(family_name: str) -> str:
 
 
 def _pip_requirements() -> list[str]:
-    from importlib import metadata
 
     reqs = []
     for dist in ("waneguide", "numpy", "pandas", "scikit-learn", "lightgbm", "skops", "pydantic", "scipy",
@@ -66,16 +74,12 @@ def register_bundle(bundle_dir, family_name: str, *, alias: str | None = DEFAULT
     of the family's experiment. ``alias`` (default ``in-service``) is moved to the new version;
     ``None`` leaves the aliases alone.
     """
-    from waneguide.operations.tracking import experiment_name, init_tracking
 
-    from waneguide.models.bundle import load_bundle
 
     bundle_dir = Path(bundle_dir).resolve()
     bundle = load_bundle(bundle_dir)  # refuses a tampered or foreign bundle before it is registered
     bundle_dir = bundle.path
     init_tracking(tracking_uri)
-    import mlflow
-    from mlflow.tracking import MlflowClient
 
     name = registered_name(family_name)
     with tempfile.TemporaryDirectory() as tmp:
@@ -112,10 +116,8 @@ def register_bundle(bundle_dir, family_name: str, *, alias: str | None = DEFAULT
 
 def set_alias(family_name: str, version: str, alias: str = DEFAULT_ALIAS, tracking_uri=None) -> None:
     """Point ``alias`` of the family's registered model at ``version``."""
-    from waneguide.operations.tracking import init_tracking
 
     init_tracking(tracking_uri)
-    from mlflow.tracking import MlflowClient
 
     MlflowClient().set_registered_model_alias(registered_name(family_name), alias, str(version))
 
@@ -135,13 +137,10 @@ def resolve_model(name_or_dir, tracking_uri=None) -> Path:
         return p
     m = _REF.match(str(name_or_dir))
     if not m:
-        raise ValueError(f"{str(name_or_dir)!r} is neither an existing bundle directory nor a model reference "
+        raise InputError(f"{str(name_or_dir)!r} is neither an existing bundle directory nor a model reference "
                          f"(NAME, NAME@ALIAS, NAME/VERSION)")
-    from waneguide.operations.tracking import init_tracking
 
     uri = init_tracking(tracking_uri)
-    from mlflow.exceptions import MlflowException
-    from mlflow.tracking import MlflowClient
 
     client = MlflowClient()
     name = registered_name(m.group("name"))
@@ -151,18 +150,17 @@ def resolve_model(name_or_dir, tracking_uri=None) -> Path:
         else:
             mv = client.get_model_version_by_alias(name, m.group("alias") or DEFAULT_ALIAS)
     except MlflowException as exc:
-        raise ValueError(f"no model bundle directory {str(name_or_dir)!r} and no registered model version for it "
+        raise InputError(f"no model bundle directory {str(name_or_dir)!r} and no registered model version for it "
                          f"in {uri}: {exc.message if hasattr(exc, 'message') else exc}") from None
     local = (mv.tags or {}).get("bundle_path")
     if local and Path(local).is_dir():
         return Path(local)
-    import mlflow
 
-    dst = Path.cwd() / ".waneguide-models" / name / str(mv.version)
+    dst = local_model_cache(uri) / name / str(mv.version)
     if not (dst / "bundle").is_dir():
         dst.mkdir(parents=True, exist_ok=True)
         mlflow.artifacts.download_artifacts(artifact_uri=f"models:/{name}/{mv.version}", dst_path=str(dst))
     found = [q.parent for q in dst.rglob("bundle.json")]
     if not found:
-        raise ValueError(f"registered model {name} version {mv.version} has no bundle among its artifacts")
+        raise InputError(f"registered model {name} version {mv.version} has no bundle among its artifacts")
     return found[0]

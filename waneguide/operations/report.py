@@ -23,7 +23,14 @@ import math
 from pathlib import Path
 from typing import Any, Mapping
 
+import matplotlib.dates as mdates
 import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from waneguide.core.atomic import atomic_write_text
+from waneguide.core.caution import CAUTION
+from waneguide.operations.drift import PSI_MAJOR, PSI_MODERATE
 
 __all__ = ["write_report", "render_report", "figure_to_data_uri"]
 
@@ -70,20 +77,17 @@ def _fmt(v: Any, digits: int = 2, pct: bool = False) -> str:
 
 
 def _times(values):
-    import pandas as pd
 
     return pd.to_datetime(pd.Series(list(values), dtype=object), utc=True, errors="coerce", format="ISO8601")
 
 
 def _fig(w=8.0, h=3.6):
-    from matplotlib.figure import Figure
 
     fig = Figure(figsize=(w, h))
     return fig
 
 
 def _date_axis(ax):
-    import matplotlib.dates as mdates
 
     loc = mdates.AutoDateLocator(minticks=3, maxticks=8)
     ax.xaxis.set_major_locator(loc)
@@ -215,7 +219,6 @@ def _drift_figure(drift, settings):
 
 
 def _feature_drift_figure(ft, top=15):
-    from waneguide.operations.drift import PSI_MAJOR, PSI_MODERATE
 
     g = ft.dropna(subset=["psi"]).sort_values("psi", ascending=False).head(top)[::-1]
     fig = _fig(8.0, 0.32 * max(len(g), 3) + 1.2)
@@ -259,9 +262,7 @@ def _img(fig, alt: str, ident: str) -> str:
 def render_report(*, scores, audit=None, model: Mapping[str, Any] | None = None,
                   limit_pct: float | None = None, title: str | None = None) -> str:
     """The report as one HTML string (see :func:`write_report`)."""
-    import pandas as pd
 
-    from waneguide.core.caution import CAUTION
 
     model = dict(model or {})
     if audit is not None and not model:
@@ -450,7 +451,6 @@ def write_report(path, *, scores, audit=None, model: Mapping[str, Any] | None = 
     limit_pct : float, optional
         Limit line [% of nominal]; default: the limit stored with the scores.
     """
-    from waneguide.core.atomic import atomic_write_text
 
     text = render_report(scores=scores, audit=audit, model=model, limit_pct=limit_pct, title=title)
     return atomic_write_text(path, text)

@@ -28,10 +28,23 @@ import json
 import math
 import os
 import uuid
+from dataclasses import replace
 from pathlib import Path
 from typing import Any, Sequence
 
 import numpy as np
+import pandas as pd
+
+from waneguide.core.atomic import atomic_path
+from waneguide.core.caution import CAUTION
+from waneguide.core.errors import InputError
+from waneguide.core.runner import check_n_jobs, check_scheduler, run_tasks
+from waneguide.features.capture import Capture
+from waneguide.features.extractor import extract_feature_table
+from waneguide.features.io import capture_files, read_capture
+from waneguide.models.bundle import ModelBundle, load_bundle
+from waneguide.operations.history import History, capture_content_hash
+from waneguide.operations.registry import resolve_model
 
 __all__ = [
     "SCORE_OUTPUT_COLUMNS",
@@ -63,32 +76,25 @@ DEFAULT_CHUNK = 32
 # --------------------------------------------------------------------------------------
 def load_model(model, *, tracking_uri: str | None = None):
     """A :class:`~models.bundle.ModelBundle` from a bundle, a bundle folder or a registry name."""
-    from waneguide.models.bundle import ModelBundle, load_bundle
 
     if isinstance(model, ModelBundle):
         return model
     p = Path(str(model))
     if p.exists():
         return load_bundle(p)
-    try:
-        from waneguide.operations.registry import resolve_model
-    except ImportError:  # registry not available: only folders work
-        raise ValueError(f"model {str(model)!r} is neither a bundle folder nor a known registry name.") from None
     return load_bundle(resolve_model(str(model), tracking_uri=tracking_uri))
 
 
 def _is_capture(x) -> bool:
-    from waneguide.features.capture import Capture
 
     return isinstance(x, Capture)
 
 
 def _items(captures) -> list:
     """Capture objects and file paths, in input order (directories expanded, sorted)."""
-    from waneguide.features.io import capture_files
 
     if captures is None:
-        raise ValueError("no captures given; pass a folder, files, or Capture objects.")
+        raise InputError("no captures given; pass a folder, files, or Capture objects.")
     if _is_capture(captures) or isinstance(captures, (str, os.PathLike)):
         captures = [captures]
     out: list = []
@@ -104,18 +110,16 @@ def _items(captures) -> list:
     if paths:
         out.extend(capture_files(paths))
     if not out:
-        raise ValueError("no captures given.")
+        raise InputError("no captures given.")
     return out
 
 
 def _read(item):
-    from waneguide.features.io import read_capture
 
     if _is_capture(item):
         return item
     cap = read_capture(item)
     if not cap.source:
-        from dataclasses import replace
 
         cap = replace(cap, source=str(item))
     return cap
@@ -154,7 +158,7 @@ def _baselines(baselines, captures_arg, family) -> dict[str, list]:
                     cand = d
                     break
         if cand is None:
-            raise ValueError(
+            raise InputError(
                 "no baselines given: pass --baselines DIR (captures of each path recorded when the metal was "
                 "sound), or put them in a 'baselines' folder inside the captures folder."
             )
@@ -164,14 +168,13 @@ def _baselines(baselines, captures_arg, family) -> dict[str, list]:
         b = _read(item)
         why = check_fits_model(b, family, role="baseline")
         if why:
-            raise ValueError(why)
+            raise InputError(why)
         by_path.setdefault(b.path_id, []).append(b)
     return by_path
 
 
 def _check_item(item, family, hashes_done: set, baseline_paths) -> tuple[str, str, str | None, bool]:
     """(content hash, path_id, refusal or None, already scored) for one capture."""
-    from waneguide.operations.history import capture_content_hash
 
     cap = _read(item)
     why = check_fits_model(cap, family)
@@ -185,10 +188,7 @@ def _check_item(item, family, hashes_done: set, baseline_paths) -> tuple[str, st
 
 def _score_chunk(bundle, items: Sequence, baselines_by_path: dict, limit_pct, batch_id: str) -> list[dict]:
     """Score one chunk; returns history rows (worker side: no database access)."""
-    import pandas as pd
 
-    from waneguide.features.extractor import extract_feature_table
-    from waneguide.operations.history import capture_content_hash
 
     caps = [_read(it) for it in items]
     family = bundle.family
@@ -237,59 +237,9 @@ def _chunks(seq: list, size: int) -> list[list]:
     return [seq[i:i + size] for i in range(0, len(seq), size)]
 
 
-def _run_chunks(fn, chunks, *, n_jobs: int, scheduler):
-    """Yield each chunk's result as it finishes (serial, joblib or Dask)."""
-    if scheduler is not None:
-        yield from _run_dask(fn, chunks, scheduler=scheduler, n_jobs=n_jobs)
-        return
-    if n_jobs == 1 or len(chunks) <= 1:
-        for ch in chunks:
-            yield fn(ch)
-        return
-    from joblib import Parallel, delayed
-
-    par = Parallel(n_jobs=n_jobs, return_as="generator_unordered", backend="loky")
-    yield from par(delayed(fn)(ch) for ch in chunks)
-
-
-def _run_dask(fn, chunks, *, scheduler, n_jobs: int):
-    from distributed import Client, LocalCluster, as_completed
-
-    cluster = None
-    if isinstance(scheduler, Client):
-        client, own = scheduler, False
-    elif str(scheduler) == "local":
-        cluster = LocalCluster(n_workers=max(1, n_jobs), threads_per_worker=1, processes=True,
-                               host="127.0.0.1", dashboard_address=None)
-        client, own = Client(cluster), True
-    else:
-        addr = str(scheduler)
-        if not (addr.startswith("tcp://") or addr.startswith("tls://") or addr.startswith("inproc://")):
-            raise ValueError(f"--scheduler must be a Dask scheduler address such as tcp://127.0.0.1:8786, "
-                             f"or 'local'; got {addr!r}.")
-        client, own = Client(addr), True
-    try:
-        futures = [client.submit(fn, ch, pure=False) for ch in chunks]
-        for fut in as_completed(futures):
-            yield fut.result()
-    finally:
-        if own:
-            client.close()
-            if cluster is not None:
-                cluster.close()
-
-
-class _Job:
-    """Picklable chunk scorer (the bundle travels once per task with joblib/Dask)."""
-
-    def __init__(self, bundle, baselines_by_path, limit_pct, batch_id):
-        self.bundle = bundle
-        self.baselines_by_path = baselines_by_path
-        self.limit_pct = limit_pct
-        self.batch_id = batch_id
-
-    def __call__(self, items):
-        return _score_chunk(self.bundle, items, self.baselines_by_path, self.limit_pct, self.batch_id)
+def _score_task(items, *, bundle, baselines_by_path, limit_pct, batch_id) -> list[dict]:
+    """Runner task: score one chunk (the bundle and baselines are shared by every task)."""
+    return _score_chunk(bundle, items, baselines_by_path, limit_pct, batch_id)
 
 
 def check_limit_pct(limit_pct, option: str = "limit_pct") -> float | None:
@@ -298,7 +248,7 @@ def check_limit_pct(limit_pct, option: str = "limit_pct") -> float | None:
         return None
     lp = float(limit_pct)
     if not (math.isfinite(lp) and 0 < lp < 100):
-        raise ValueError(f"{option} must be a wall loss in percent of nominal thickness, 0 < L < 100; "
+        raise InputError(f"{option} must be a wall loss in percent of nominal thickness, 0 < L < 100; "
                          f"got {limit_pct!r}.")
     return lp
 
@@ -317,7 +267,8 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
         Baseline captures (sound metal) of every path; default: the ``baselines`` folder
         inside or beside the captures folder. Matched to captures by ``path_id``.
     limit_pct : float, optional
-        Limit on the maximum wall loss [% of nominal] for ``exceed_probability``.
+        Limit on the maximum wall loss [% of nominal] for ``exceed_probability``; default: the
+        family file's ``[limits] wall_loss_limit_pct``, if it states one (else no exceedance).
     db_url : str, optional
         History database URL (default ``sqlite:///waneguide-history.db``).
     n_jobs : int
@@ -344,15 +295,16 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
         fails its integrity check, bad ``limit_pct``/``n_jobs``/``chunk_size``.
     """
 
-    from waneguide.operations.history import History
 
-    limit_pct = check_limit_pct(limit_pct)
-    if int(n_jobs) != n_jobs or n_jobs == 0 or n_jobs < -1:
-        raise ValueError(f"n_jobs must be a positive integer (or -1 for all cores); got {n_jobs!r}.")
+    limit_pct = check_limit_pct(limit_pct, "limit_pct (--limit-pct)")
+    n_jobs = check_n_jobs(n_jobs, "n_jobs (--jobs)")
+    scheduler = check_scheduler(scheduler)
     if int(chunk_size) < 1:
-        raise ValueError(f"chunk_size must be a positive integer; got {chunk_size!r}.")
+        raise InputError(f"chunk_size must be a positive integer; got {chunk_size!r}.")
     bundle = load_model(bundle, tracking_uri=tracking_uri)
     family = bundle.family
+    if limit_pct is None:  # the family file may state the limit ([limits] wall_loss_limit_pct)
+        limit_pct = family.limits.wall_loss_limit_pct
     items = _items(captures)
     by_path = _baselines(baselines, captures, family)
     hist = History(db_url)
@@ -362,7 +314,7 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
         refusals = [c[2] for c in checks if c[2]]
         if refusals:
             more = f" (and {len(refusals) - 1} more)" if len(refusals) > 1 else ""
-            raise ValueError(f"refused: {refusals[0]}{more}; nothing was scored.")
+            raise InputError(f"refused: {refusals[0]}{more}; nothing was scored.")
         hashes = [c[0] for c in checks]
         todo_idx: list[int] = []
         seen: set[str] = set()
@@ -371,23 +323,14 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
                 todo_idx.append(i)
                 seen.add(h)
         batch_id = uuid.uuid4().hex[:12]
-        job = _Job(bundle, by_path, limit_pct, batch_id)
         chunks = _chunks([items[i] for i in todo_idx], int(chunk_size))
-        bar = None
-        if progress:
-            from tqdm.auto import tqdm
-
-            bar = tqdm(total=len(todo_idx), desc="scoring", unit="capture", leave=False)
         new_hashes: set[str] = set()
-        try:
-            for rows in _run_chunks(job, chunks, n_jobs=int(n_jobs), scheduler=scheduler):
-                hist.add_scores(rows)
-                new_hashes.update(r["content_hash"] for r in rows)
-                if bar is not None:
-                    bar.update(len(rows))
-        finally:
-            if bar is not None:
-                bar.close()
+        shared = {"bundle": bundle, "baselines_by_path": by_path, "limit_pct": limit_pct, "batch_id": batch_id}
+        for _, rows in run_tasks(_score_task, {k: (ch,) for k, ch in enumerate(chunks)}, n_jobs=n_jobs,
+                                 scheduler=scheduler, shared=shared, progress=progress, desc="scoring",
+                                 unit="capture", weight=lambda k: len(chunks[k])):
+            hist.add_scores(rows)
+            new_hashes.update(r["content_hash"] for r in rows)
         stored = hist.scores(model_version=str(bundle.version), content_hashes=hashes)
     finally:
         hist.close()
@@ -406,7 +349,6 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
 
 def write_scores_csv(df, path) -> Path:
     """Write the score table as CSV atomically (``--out``)."""
-    from waneguide.core.atomic import atomic_path
 
     with atomic_path(path) as tmp:
         df.to_csv(tmp, index=False, lineterminator="\n")
@@ -415,7 +357,6 @@ def write_scores_csv(df, path) -> Path:
 
 def format_scores(df, *, max_rows: int = 60) -> str:
     """The score table for the terminal (a few columns, rounded) with the caution."""
-    from waneguide.core.caution import CAUTION
 
     view = df.copy()
     view["file"] = [Path(str(f)).name for f in view["file"]]
@@ -430,7 +371,6 @@ def format_scores(df, *, max_rows: int = 60) -> str:
         "in_family": view["in_family"].map({True: "yes", False: "NO"}).fillna("-"),
         "status": view["status"],
     }
-    import pandas as pd
 
     t = pd.DataFrame(table)
     text = t.head(max_rows).to_string(index=False, na_rep="-")

@@ -1,11 +1,13 @@
 """MLflow run tracking with an embedded default store (no server needed).
 
-* MLflow is imported lazily (it costs seconds), so scoring and ``--help`` stay fast.
 * Default tracking URI: ``sqlite:///<working directory>/mlflow.db``; ``--tracking-uri`` for a
   team server.
 * Telemetry is off (``MLFLOW_DISABLE_TELEMETRY=true``; ``DO_NOT_TRACK=true``): no outbound calls.
 * :func:`init_tracking` creates / migrates the store once per process, under a lock, before
   any parallel work: concurrent first use of a new SQLite store races on its schema migration.
+* For a SQLite store an experiment's artifacts go beside the database
+  (``<database name>-artifacts/<experiment>/``), never into MLflow's default ``./mlruns``:
+  :func:`ensure_experiment` creates experiments that way, and :class:`TrackedRun` uses it.
 """
 from __future__ import annotations
 
@@ -16,9 +18,15 @@ import threading
 from pathlib import Path
 from typing import Any, Mapping
 
-from waneguide.core.settings import default_tracking_uri, offline_defaults
+import mlflow
+from mlflow.exceptions import MlflowException
+from mlflow.tracking import MlflowClient
 
-__all__ = ["default_tracking_uri", "init_tracking", "TrackedRun", "flatten_metrics", "experiment_name"]
+from waneguide.core.errors import InputError
+from waneguide.core.settings import DEFAULT_MODEL_CACHE_DIR, default_tracking_uri, offline_defaults
+
+__all__ = ["default_tracking_uri", "init_tracking", "TrackedRun", "flatten_metrics", "experiment_name",
+           "artifact_location", "ensure_experiment", "local_model_cache"]
 
 _READY: set[str] = set()
 _LOCK = threading.Lock()
@@ -32,8 +40,6 @@ def init_tracking(tracking_uri: str | None = None) -> str:
     """Point MLflow at ``tracking_uri`` (default: :func:`default_tracking_uri`) and create the store once."""
     offline_defaults()
     uri = tracking_uri or default_tracking_uri()
-    import mlflow
-    from mlflow.tracking import MlflowClient
 
     with _LOCK:
         mlflow.set_tracking_uri(uri)
@@ -42,10 +48,57 @@ def init_tracking(tracking_uri: str | None = None) -> str:
             try:
                 MlflowClient(uri).search_experiments(max_results=1)  # creates + migrates the schema
             except Exception as exc:  # noqa: BLE001 - turn any store failure into a clear user error
-                raise ValueError(f"cannot open the MLflow tracking store {uri!r}: {exc}. "
+                raise InputError(f"cannot open the MLflow tracking store {uri!r}: {exc}. "
                                  f"Check --tracking-uri (default: sqlite file mlflow.db in the working directory)") from None
             _READY.add(uri)
     return uri
+
+
+_SQLITE = "sqlite:///"
+
+
+def artifact_location(tracking_uri: str, experiment: str) -> str | None:
+    """File URI of the artifact folder of ``experiment`` beside a SQLite tracking database.
+
+    ``sqlite:////data/mlflow.db`` -> ``file:///data/mlflow-artifacts/<experiment>``; a relative
+    database path is taken from the working directory, as SQLite does. None for any other kind
+    of store (a tracking server or a file store chooses its own).
+    """
+    if not tracking_uri.startswith(_SQLITE):
+        return None
+    db = tracking_uri[len(_SQLITE):].split("?", 1)[0]
+    if not db or db == ":memory:":
+        return None
+    db_path = Path(db).resolve()
+    return (db_path.parent / f"{db_path.stem}-artifacts" / experiment).as_uri()
+
+
+def ensure_experiment(tracking_uri: str | None, experiment: str) -> str:
+    """Create ``experiment`` with its artifacts beside a SQLite store (see :func:`artifact_location`).
+
+    Returns the tracking URI used. An existing experiment is left as it is.
+    """
+    uri = init_tracking(tracking_uri)
+    client = MlflowClient(uri)
+    if client.get_experiment_by_name(experiment) is None:
+        try:
+            client.create_experiment(experiment, artifact_location=artifact_location(uri, experiment))
+        except MlflowException:
+            if client.get_experiment_by_name(experiment) is None:  # not a concurrent creation: a real failure
+                raise
+    return uri
+
+
+def local_model_cache(tracking_uri: str) -> Path:
+    """Folder where registered bundles are downloaded when their own folder is gone.
+
+    Beside a SQLite store: ``<database name>-artifacts/downloaded-models/``; for any other store
+    :data:`waneguide.core.settings.DEFAULT_MODEL_CACHE_DIR` in the working directory.
+    """
+    loc = artifact_location(tracking_uri, "downloaded-models")
+    if loc is not None:
+        return Path(loc[len("file://"):])
+    return Path.cwd() / DEFAULT_MODEL_CACHE_DIR
 
 
 def flatten_metrics(d: Mapping, prefix: str = "") -> dict[str, float]:
@@ -85,8 +138,7 @@ class TrackedRun:
     def __enter__(self) -> "TrackedRun":
         if not self.enabled:
             return self
-        self.uri = init_tracking(self.tracking_uri)
-        import mlflow
+        self.uri = ensure_experiment(self.tracking_uri, self.experiment)
 
         self._mlflow = mlflow
         mlflow.set_experiment(self.experiment)
