@@ -103,7 +103,7 @@ def _mode_plan(family: Family, mode: str, w: ModeWindow, fs: float, pre: float, 
     x = vg[j_nom] * (np.linspace(w.start_s, w.stop_s, COMP_POINTS) - burst_centre)
     op = CompensationOperator.build(
         band_frequency_hz=f_bins[band], wavenumber_rad_m=k, thickness_m=cand, distance_m=x,
-        path_m=family.path.spacing_m, segment_start_s=t_seg0, burst_centre_s=burst_centre,
+        path_length_m=family.path_length_m, segment_start_s=t_seg0, burst_centre_s=burst_centre,
         nominal_index=j_nom,
     )
     return ModePlan(mode, i0, i1, gate, n_fft, band, subs, dft, max(1, length // 2), op, vg,

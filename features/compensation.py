@@ -207,7 +207,7 @@ class CompensationOperator:
         wavenumber_rad_m: np.ndarray,
         thickness_m: np.ndarray,
         distance_m: np.ndarray,
-        path_m: float,
+        path_length_m: float,
         segment_start_s: float,
         burst_centre_s: float,
         nominal_index: int,
@@ -223,7 +223,7 @@ class CompensationOperator:
         xm = np.asarray(distance_m, dtype=float)
         j = int(nominal_index)
         profile = ref[:, None] * np.exp(1j * k[j][:, None] * xm[None, :]) * dw
-        focus = ref[:, None] * np.exp(1j * k.T * float(path_m))
+        focus = ref[:, None] * np.exp(1j * k.T * float(path_length_m))
         return cls(np.ascontiguousarray(profile), np.ascontiguousarray(focus),
                    np.asarray(thickness_m, dtype=float), xm, j)
 

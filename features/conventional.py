@@ -62,7 +62,7 @@ class ConventionalInversion:
         curves = fundamental_dispersion(fam.build_material(), self.d_table, [fam.excitation.centre_frequency_hz])
         vg = curves.group_velocity_m_s[:, curves.mode_index(self.mode), 0]
         self.slowness_table = 1.0 / vg
-        self.path_m = fam.path.spacing_m
+        self.path_length_m = fam.path_length_m
         slow0 = 1.0 / float(np.interp(d0, self.d_table, vg))
         self.nominal_slowness = slow0
         ds = np.diff(self.slowness_table)
@@ -77,7 +77,7 @@ class ConventionalInversion:
         shift = np.asarray(shift_s, dtype=float)
         thermal = self.thermal.thermal_shift_s(self.mode, temperature_c, baseline_temperature_c)
         corrected = shift - thermal
-        slow = self.nominal_slowness + corrected / self.path_m
+        slow = self.nominal_slowness + corrected / self.path_length_m
         tab_s, tab_d = self.slowness_table, self.d_table
         if tab_s[0] > tab_s[-1]:
             tab_s, tab_d = tab_s[::-1], tab_d[::-1]

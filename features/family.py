@@ -118,7 +118,8 @@ class SectionSpec(_Strict):
         return self
 
     @property
-    def flange_thickness_m(self) -> float:
+    def nominal_thickness_m(self) -> float:
+        """Nominal flange (wall) thickness [m]; the code's one name for it."""
         return self.flange_thickness_mm * 1e-3
 
     @property
@@ -136,7 +137,8 @@ class PathSpec(_Strict):
     transducer_diameter_mm: float = Field(default=7.0, gt=0.0, le=50.0)
 
     @property
-    def spacing_m(self) -> float:
+    def path_length_m(self) -> float:
+        """Transmitter-to-receiver distance [m]; the code's one name for the path length."""
         return self.transducer_spacing_mm * 1e-3
 
     def end_distances_m(self) -> tuple[float, float]:
@@ -364,7 +366,13 @@ class Family(_Strict):
 
     @property
     def nominal_thickness_m(self) -> float:
-        return self.section.flange_thickness_m
+        """Nominal flange (wall) thickness [m]."""
+        return self.section.nominal_thickness_m
+
+    @property
+    def path_length_m(self) -> float:
+        """Transmitter-to-receiver distance [m]."""
+        return self.path.path_length_m
 
     @property
     def full_scale_v(self) -> float:

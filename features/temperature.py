@@ -65,7 +65,7 @@ class ThermalModel:
         self.material = family.build_material()
         self.frequency_hz = float(frequency_hz or family.excitation.centre_frequency_hz)
         self.thickness_m = family.nominal_thickness_m
-        self.path_m = family.path.spacing_m
+        self.path_length_m = family.path_length_m
         f = self.frequency_hz * np.linspace(0.6, 1.6, 201)
         curves = fundamental_dispersion(self.material, [self.thickness_m], f)
         self._f = f
@@ -89,7 +89,7 @@ class ThermalModel:
     def arrival_time_s(self, mode: str, temperature_c) -> np.ndarray:
         """Group arrival time L e / v_g of ``mode`` over the path [s]."""
         e, _ = self._scales(temperature_c)
-        return self.path_m * e / self.group_velocity_m_s(mode, temperature_c)
+        return self.path_length_m * e / self.group_velocity_m_s(mode, temperature_c)
 
     def thermal_shift_s(self, mode: str, temperature_c, baseline_temperature_c) -> np.ndarray:
         """Predicted arrival shift of ``mode`` from the baseline temperature to the capture's [s]."""

@@ -66,7 +66,7 @@ class BaselineThicknessGauge:
         k_nom = fundamental_dispersion(mat, family.nominal_thickness_m, fb)
         G = {m: em.burst_spectrum(fb) * em.pair_response(fb) * np.exp(1j * w * segment_start_s)
              * em.pair_aperture(k_nom.wavenumber_rad_m[0, k_nom.mode_index(m)]) for m in ("S0", "A0")}
-        L = family.path.spacing_m
+        L = family.path_length_m
         d_near, d_far = family.path.end_distances_m()
         paths = (("A0", L), ("S0", L + 2 * d_near), ("S0", L + 2 * d_far))
         d = family.nominal_thickness_m * self.fractions

@@ -83,7 +83,7 @@ def _mode_windows(family, velocity_margin):
     d = d0 * np.linspace(1.0 - 0.5 * loss, 1.0, 6)
     curves = fundamental_dispersion(mat, d, f)
     burst = family.excitation.cycles / family.excitation.centre_frequency_hz
-    L = family.path.spacing_m
+    L = family.path_length_m
     out: dict[str, ModeWindow] = {}
     for mode in MODES:
         vg = curves.group_velocity_m_s[:, curves.mode_index(mode), :]

@@ -154,7 +154,7 @@ class Campaign:
         seg = float(self.manifest["segment_m"])
         x = (np.arange(int(self.manifest["n_segments"])) + 0.5) * seg
         return ThinningProfile(x, arrays["thickness_m"][j].astype(float), fam.nominal_thickness_m,
-                               fam.path.spacing_m, patch_count=int(row["patch_count"]),
+                               fam.path_length_m, patch_count=int(row["patch_count"]),
                                shape="pristine" if row["max_loss_pct"] == 0 else str(row["shape"]),
                                sides=str(row["sides"]))
 

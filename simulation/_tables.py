@@ -79,7 +79,7 @@ def _fft_length(family: Family, em: ExcitationModel, f_lo: float, f_hi: float, n
     cg_min = np.nanmin(probe.group_velocity_m_s)
     d_near, d_far = family.path.end_distances_m()
     e1, e2 = family.edge_distances_m()
-    L = family.path.spacing_m
+    L = family.path_length_m
     r_max = max(L + 2 * d_near, L + 2 * d_far, math.hypot(L, 2 * max(e1, e2)))
     ring_s = 10 * em.quality_factor / (np.pi * em.resonance_hz)
     t_needed = acq.pretrigger_s + r_max * 1.05 / cg_min + 3 * n_burst / fs + ring_s
@@ -124,7 +124,7 @@ def _build_tables(family: Family, n_thickness: int) -> Tables:
         return float(np.abs(sfft.irfft(full, n_fft)[:N]).max())
 
     # pristine direct arrival at reference temperature, unit scale
-    L = family.path.spacing_m
+    L = family.path_length_m
     ref_peak_unit = peak_of((src * np.exp(-1j * k_nom * L)).sum(axis=0))
     ref_peak = _REF_PEAK_FRACTION * family.full_scale_v
     src *= ref_peak / ref_peak_unit

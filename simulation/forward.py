@@ -140,7 +140,7 @@ class ForwardModel:
         self.pretrigger_s = acq.pretrigger_s
         self.material = family.build_material()
         self.nominal_thickness_m = family.nominal_thickness_m
-        self.path_length_m = family.path.spacing_m
+        self.path_length_m = family.path_length_m
         n_seg = max(1, int(round(self.path_length_m / (family.domain.segment_mm * 1e-3))))
         self.segment_m = self.path_length_m / n_seg
         self.x_m = (np.arange(n_seg) + 0.5) * self.segment_m

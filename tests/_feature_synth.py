@@ -18,7 +18,7 @@ F_GRID = np.linspace(5e3, 800e3, 800)
 
 
 def synth_record(family, *, thickness_m=None, temperature_c=20.0, amplitudes=(0.3, 1.0), noise_v=0.0,
-                 rng=None, path_m=None, n_samples=None):
+                 rng=None, path_length_m=None, n_samples=None):
     """Record [V] on the family's time axis: S0 and A0 over the path, plus white noise."""
     mat = family.build_material()
     fs = family.acquisition.sample_rate_hz
@@ -30,7 +30,7 @@ def synth_record(family, *, thickness_m=None, temperature_c=20.0, amplitudes=(0.
     c = fundamental_dispersion(m, [d * e], F_GRID)
     b = tone_burst(family.excitation.centre_frequency_hz, family.excitation.cycles, fs, n_samples=n,
                    pretrigger_s=pre)
-    L = (family.path.spacing_m if path_m is None else path_m) * e
+    L = (family.path_length_m if path_length_m is None else path_length_m) * e
     y = np.zeros(n)
     for j, amp in enumerate(amplitudes):
         if amp:

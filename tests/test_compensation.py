@@ -28,7 +28,7 @@ def a0_case(family_fb2):
     c = fundamental_dispersion(fam.build_material(), [fam.nominal_thickness_m], F_GRID)
     k = c.wavenumber_rad_m[0, 1]
     burst = tone_burst(f0, cyc, fs, n_samples=fam.acquisition.record_length, pretrigger_s=pre)
-    L = fam.path.spacing_m
+    L = fam.path_length_m
     y = dispersive_propagate(burst, fs, F_GRID, k, L)
     vg0 = float(np.interp(f0, F_GRID, c.group_velocity_m_s[0, 1]))
     return fam, fs, pre, f0, cyc, k, burst, y, L, vg0
@@ -83,7 +83,7 @@ def test_extractor_operator_agrees_with_literal_wilcox(family_fb2):
     literal_position = m.position_m[0] - vg0 * 5 / (2 * 150e3)
     assert row["a0_comp_position_m"] == pytest.approx(literal_position, abs=1e-3)
     assert row["a0_comp_width_m"] == pytest.approx(m.width_m[0], rel=0.03)
-    assert row["a0_comp_position_m"] == pytest.approx(fam.path.spacing_m, abs=2e-3)
+    assert row["a0_comp_position_m"] == pytest.approx(fam.path_length_m, abs=2e-3)
 
 
 @pytest.mark.parametrize("true_fraction", [1.0, 0.9, 0.8, 0.7])

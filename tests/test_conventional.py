@@ -22,7 +22,7 @@ def test_inversion_of_an_exact_group_delay(family_fb2, fraction):
     d0 = fam.nominal_thickness_m
     c = fundamental_dispersion(fam.build_material(), [d0, fraction * d0], [fam.excitation.centre_frequency_hz])
     vg = c.group_velocity_m_s[:, 1, 0]
-    shift = fam.path.spacing_m * (1 / vg[1] - 1 / vg[0])
+    shift = fam.path_length_m * (1 / vg[1] - 1 / vg[0])
     est = conventional_estimate(fam, shift_s=shift, temperature_c=20.0, baseline_temperature_c=20.0)
     assert est["mean_loss_pct"] == pytest.approx(100 * (1 - fraction), abs=0.05)
     assert est["in_table"] is True and est["thermal_shift_s"] == 0.0

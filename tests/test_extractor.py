@@ -149,7 +149,7 @@ def test_thinning_shift_matches_rayleigh_lamb_group_velocity(pair):
     c = fundamental_dispersion(fam.build_material(), [fam.nominal_thickness_m, 0.9 * fam.nominal_thickness_m],
                                [fam.excitation.centre_frequency_hz])
     vg = c.group_velocity_m_s[:, 1, 0]
-    expected = fam.path.spacing_m * (1 / vg[1] - 1 / vg[0])
+    expected = fam.path_length_m * (1 / vg[1] - 1 / vg[0])
     assert row["a0_shift_envelope_s"] == pytest.approx(expected, rel=0.10)
     assert abs(row["s0_shift_envelope_s"]) < 0.1 * expected  # S0 nearly thickness-blind
     assert row["a0_sharpest_thickness_ratio"] == pytest.approx(0.9, abs=0.01)
@@ -163,7 +163,7 @@ def test_physics_check_features(pair):
     t_c = fam.excitation.cycles / (2 * fam.excitation.centre_frequency_hz)
     # S0 envelope arrives after the burst centre plus L / v_g (Rayleigh-Lamb), within 1 % (S0 is nearly
     # non-dispersive at 0.3 MHz mm, so the packet keeps its shape; 1 %: common practice, no source)
-    assert row["baseline_s0_arrival_s"] == pytest.approx(t_c + fam.path.spacing_m / c.group_velocity_m_s[0, 0, 0],
+    assert row["baseline_s0_arrival_s"] == pytest.approx(t_c + fam.path_length_m / c.group_velocity_m_s[0, 0, 0],
                                                          rel=0.01)
     assert row["sample_rate_hz"] == fam.acquisition.sample_rate_hz
     # spectral peak within the excitation's main lobe, f0 (1 +- 2/N) (Hann window of N cycles: first

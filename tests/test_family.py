@@ -37,7 +37,7 @@ def test_si_properties_convert_the_edge_units(family_fb2):
     assert f.acquisition.sample_rate_hz == pytest.approx(10e6)
     assert f.acquisition.pretrigger_s == pytest.approx(20e-6)
     assert f.excitation.centre_frequency_hz == pytest.approx(150e3)
-    assert f.path.spacing_m == pytest.approx(0.300)
+    assert f.path_length_m == pytest.approx(0.300)
     near, far = f.path.end_distances_m()
     assert (near, far) == pytest.approx((0.120, 0.180))  # 600 - 120 - 300 mm
     assert f.edge_distances_m() == pytest.approx((0.012, 0.028))  # 12 mm and 40 - 12 mm
@@ -142,7 +142,7 @@ def test_record_length_that_cannot_hold_the_mode_windows_is_refused(tmp_path, fa
     acq, exc = family_fb2.acquisition, family_fb2.excitation
     c = fundamental_dispersion(family_fb2.build_material(), [family_fb2.nominal_thickness_m],
                                [exc.centre_frequency_hz])
-    t_end = family_fb2.path.spacing_m / c.group_velocity_m_s[0, c.mode_index("A0"), 0] + exc.cycles / exc.centre_frequency_hz
+    t_end = family_fb2.path_length_m / c.group_velocity_m_s[0, c.mode_index("A0"), 0] + exc.cycles / exc.centre_frequency_hz
     assert need["A0"] / acq.sample_rate_hz - acq.pretrigger_s > t_end
 
 

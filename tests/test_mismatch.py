@@ -63,7 +63,7 @@ def test_physics_reasons(family_fb2):
     mat = family_fb2.build_material()
     # Graff 1975 sec. 8.1: S0 at fd -> 0 travels at the plate velocity; at 150 kHz x 2 mm
     # (fd = 0.3 MHz mm) the dispersion correction is below 1 %
-    t_plate = family_fb2.path.spacing_m / mat.plate_velocity_m_s
+    t_plate = family_fb2.path_length_m / mat.plate_velocity_m_s
     assert chk.expected_s0_arrival_s() == pytest.approx(t_plate, rel=0.01)
     rng = np.random.default_rng(4)
     n = 200

@@ -56,7 +56,7 @@ def make_captures(family, folder: Path, *, seed: int = 7, n_repeat: int = 1) -> 
 
     rng = np.random.default_rng(seed)
     (folder / "baselines").mkdir(parents=True, exist_ok=True)
-    L = family.path.transducer_spacing_mm * 1e-3
+    L = family.path_length_m
     t0 = family.nominal_thickness_m
     x = np.linspace(0.0, L, 301)
     truth = {}

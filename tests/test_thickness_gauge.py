@@ -43,7 +43,7 @@ def _baseline(family, fraction, temperature_c, *, s0_echo=0.0):
     mat = ref.at_temperature(temperature_c)
     e = 1.0 + ref.thermal_expansion_per_k * (temperature_c - ref.reference_temperature_c)
     cur = fundamental_dispersion(mat, [family.nominal_thickness_m * fraction * e], f)
-    L = family.path.spacing_m * e
+    L = family.path_length_m * e
     out = dispersive_propagate(src_mode["A0"], fs, f, cur.wavenumber_rad_m[0, cur.mode_index("A0")], L)
     if s0_echo:
         d_near, _ = family.path.end_distances_m()

@@ -199,7 +199,7 @@ def test_measured_recalibration_and_cli(trained, tmp_path, family_fb2, capsys):
 
     res, root = trained
     rng = np.random.default_rng(5)
-    x = np.linspace(0, family_fb2.path.spacing_m, 301)
+    x = np.linspace(0, family_fb2.path_length_m, 301)
     d0 = family_fb2.nominal_thickness_m
     rows = []
     for p in range(6):

@@ -7,6 +7,7 @@ from the installed copy, writing nothing outside ``--out``.
 from __future__ import annotations
 
 import os
+import shutil
 import subprocess
 import sys
 import sysconfig
@@ -29,9 +30,13 @@ def _run(cmd, **kw):
 @pytest.fixture(scope="module")
 def wheel(tmp_path_factory) -> Path:
     out = tmp_path_factory.mktemp("wheel")
+    # build from a copy: an in-tree build leaves build/ and *.egg-info in the checkout
+    src = tmp_path_factory.mktemp("src") / "waneguide"
+    shutil.copytree(ROOT, src, ignore=shutil.ignore_patterns(
+        ".git", ".venv", "build", "dist", "*.egg-info", "__pycache__", ".pytest_cache", ".ruff_cache", "demo-output"))
     # the project venv has setuptools and wheel (the [test] extra pulls `build`); no isolation means
     # no download during the test
-    _run([sys.executable, "-m", "build", "--wheel", "--no-isolation", "--outdir", out, ROOT])
+    _run([sys.executable, "-m", "build", "--wheel", "--no-isolation", "--outdir", out, src])
     (whl,) = out.glob("waneguide-*.whl")
     return whl
 

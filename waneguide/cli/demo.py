@@ -97,7 +97,7 @@ def _iso(week: int, *, days: float = 0.0) -> str:
 
 def _profile(family, path_id: str, week: int, sc: DemoScenario):
     """Thickness profile of a path in a given week (invented corrosion growth)."""
-    L = family.path.transducer_spacing_mm * 1e-3
+    L = family.path_length_m
     t0 = family.nominal_thickness_m
     x = np.linspace(0.0, L, 601)
     g = sc.growth.get(path_id)
@@ -126,7 +126,7 @@ def make_season(family, folder: Path, sc: DemoScenario, *, progress: bool = True
     base = folder / "baselines"
     caps.mkdir(parents=True, exist_ok=True)
     base.mkdir(parents=True, exist_ok=True)
-    L = family.path.transducer_spacing_mm * 1e-3
+    L = family.path_length_m
     t0 = family.nominal_thickness_m
     x = np.linspace(0.0, L, 601)
     for pid in sc.paths:
@@ -151,7 +151,7 @@ def make_season(family, folder: Path, sc: DemoScenario, *, progress: bool = True
         if pid == sc.paths[-1] and w == odd_week:
             # invented: after a repair the receiver was re-bonded 30 mm further along the flange, so
             # the path is 10 % longer than the family's: a capture the model must flag out of family
-            fam_w, x_w = moved, np.linspace(0.0, moved.path.transducer_spacing_mm * 1e-3, 601)
+            fam_w, x_w = moved, np.linspace(0.0, moved.path_length_m, 601)
             th_w = np.full_like(x_w, t0)
             note = "receiver re-bonded 30 mm further along (out of family)"
         cap = simulate_capture(fam_w, x_m=x_w, thickness_m=th_w, temperature_c=temp, rng=rng,
