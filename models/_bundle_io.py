@@ -9,6 +9,7 @@ directory and returns the pieces to build a ``ModelBundle`` from.
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import json
 import math
 import os
@@ -32,7 +33,7 @@ from waneguide.models.mismatch import PhysicsChecker
 
 __all__ = [
     "BUNDLE_FORMAT", "BUNDLE_SCHEMA_VERSION", "TRUSTED_TYPES", "VERSION_RE", "family_to_toml", "jsonable",
-    "next_version_dir", "read_bundle_dir", "write_bundle_dir",
+    "content_id", "next_version_dir", "read_bundle_dir", "write_bundle_dir",
 ]
 
 BUNDLE_FORMAT = "waneguide-model-bundle"
@@ -144,8 +145,8 @@ def write_bundle_dir(bundle, path: str | os.PathLike) -> Path:
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
     try:
         _write_files(bundle, tmp)
-        if path.exists():
-            path.rmdir()  # empty by the check above
+        # rename onto the (claimed, empty) target: POSIX rename replaces an empty directory
+        # atomically, so a concurrent save never sees the folder missing or half written
         os.replace(tmp, path)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
@@ -194,6 +195,17 @@ def _write_files(b, d: Path) -> None:
     manifest = {"format": BUNDLE_FORMAT, "version": b.version, "algorithm": "sha256",
                 "files": {f: file_sha256(d / f) for f in files}}
     (d / "manifest.json").write_text(json.dumps(manifest, indent=2))
+    b.model_id = content_id(manifest["files"])
+
+
+def content_id(files: dict[str, str]) -> str:
+    """The bundle's identity: SHA-256 (first 16 hex digits) of its manifest's file hashes.
+
+    Two bundles with the same version label in two stores have different ids; the history is
+    keyed by it (a version label alone would mix their estimates).
+    """
+    blob = json.dumps(dict(sorted(files.items())), separators=(",", ":"))
+    return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 
 # ---------------------------------------------------------------------------
@@ -314,5 +326,6 @@ def read_bundle_dir(path: str | os.PathLike) -> tuple[dict[str, Any], Path]:
         model_card=optional("model_card.md", lambda f: f.read_text()),
         family_toml=(d / "family.toml").read_text(),
         feature_schema=optional("feature_schema.json", lambda f: json.loads(f.read_text())),
+        model_id=content_id(files),
     )
     return kwargs, d

@@ -95,11 +95,14 @@ class ModelBundle:
     metrics : dict
     meta : dict (everything else recorded in bundle.json)
     path : Path or None (where it was loaded from / saved to)
+    model_id : str or None
+        Content identity of the saved bundle (hash of its manifest's file hashes; set by
+        :meth:`save` and :func:`load_bundle`); the history keys estimates by it.
     """
 
     def __init__(self, *, family, feature_columns, targets, detector=None, checker=None, training_domain=None,
                  coverage=0.9, calibration_source="simulated", version="v001", metrics=None, meta=None,
-                 model_card=None, family_toml=None, feature_schema=None):
+                 model_card=None, family_toml=None, feature_schema=None, model_id=None):
         self.family = family
         self.family_fingerprint = family.fingerprint
         self.feature_columns = list(feature_columns)
@@ -115,6 +118,7 @@ class ModelBundle:
         self.model_card = model_card
         self.family_toml = family_toml
         self.feature_schema = feature_schema
+        self.model_id = model_id
         self.path: Path | None = None
 
     def __repr__(self) -> str:
@@ -152,6 +156,17 @@ class ModelBundle:
         cols["mismatch_p_value"] = mm["mismatch_p_value"].to_numpy(dtype=float)
         cols["mismatch_reasons"] = mm["mismatch_reasons"].to_numpy(dtype=object)
         return pd.DataFrame(cols, index=feature_df.index)
+
+    def exceedance(self, feature_df: pd.DataFrame, limit_pct: float) -> np.ndarray:
+        """Probability that the maximum loss exceeds ``limit_pct`` [% of nominal], per row.
+
+        The same number :meth:`predict_frame` gives for that limit; used when a stored estimate
+        is shown again for another limit than the one it was scored with.
+        """
+        if "max_loss_pct" not in self.targets:
+            return np.full(len(feature_df), np.nan)
+        X = frame_X(feature_df, self.feature_columns)
+        return np.asarray(self.targets["max_loss_pct"].predict(X, self.coverage, float(limit_pct))["exceed"], float)
 
     # -- recalibration -----------------------------------------------------------
     def recalibrate(self, feature_df: pd.DataFrame, targets_df: pd.DataFrame, *, groups=None,
@@ -210,14 +225,30 @@ class ModelBundle:
 
     # -- persistence ---------------------------------------------------------------
     def save_version(self, store: str | os.PathLike) -> Path:
-        """Save into the next free ``vNNN`` folder of ``store``; the version string follows it."""
-        target = next_version_dir(store)
+        """Save into the next free ``vNNN`` folder of ``store``; the version string follows it.
+
+        The folder is claimed with an atomic ``mkdir`` before anything is written, so two
+        trainings into one store at the same time get two versions (the later one takes the
+        next number) and neither loses its model.
+        """
+        Path(store).mkdir(parents=True, exist_ok=True)
+        for _ in range(1000):
+            target = next_version_dir(store)
+            try:
+                target.mkdir()
+            except FileExistsError:  # taken by a concurrent save since we looked: try the next one
+                continue
+            break
+        else:  # pragma: no cover - a thousand concurrent claims
+            raise InputError(f"could not claim a new version folder in {str(store)!r}; retry")
         previous = self.version
         self.version = target.name
         try:
             return self.save(target)
         except BaseException:
             self.version = previous
+            if target.is_dir() and not any(target.iterdir()):
+                target.rmdir()  # give the claimed number back
             raise
 
     def save(self, path: str | os.PathLike) -> Path:

@@ -228,6 +228,7 @@ def model_identity(bundle) -> dict:
     fam = bundle.family
     out = {
         "model_version": str(bundle.version),
+        "model_id": str(bundle.model_id or bundle.version),
         "family_name": fam.name,
         "family_fingerprint": str(bundle.family_fingerprint),
         "family_invented": bool(getattr(fam.family, "invented", False)),
@@ -310,11 +311,12 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
     ident = model_identity(bundle)
     hist = History(db_url)
     try:
-        scores = hist.scores(model_version=ident["model_version"])
+        scores = hist.scores(model_id=ident["model_id"])
         if scores.empty:
             raise InputError(
                 f"the history {hist._safe_url()} holds no captures scored by model version "
-                f"{ident['model_version']}; run `waneguide score --model ... --db ...` first."
+                f"{ident['model_version']} (model id {ident['model_id']}); run `waneguide score --model ... --db ...` "
+                "first."
             )
         recent_feats = None
         ref = _reference_sample(bundle)
@@ -323,7 +325,7 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
             last = t.max()
             recent = scores[(t >= last - pd.Timedelta(days=s.recent_days)).to_numpy() &
                             (scores["status"] == "scored").to_numpy()]
-            recent_feats = hist.features(model_version=ident["model_version"],
+            recent_feats = hist.features(model_id=ident["model_id"],
                                          content_hashes=recent["content_hash"])
             cols = [c for c in getattr(bundle, "feature_columns", ref.columns) if c in ref.columns]
             ref = ref[cols]
@@ -335,7 +337,8 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
                               training_ranges=ranges)
         if recalibrate:
             result.challenger = _recalibrate(bundle, hist, result, tracking_uri=tracking_uri)
-        result.audit_id = hist.add_audit(model_version=ident["model_version"], verdict=result.verdict,
+        result.audit_id = hist.add_audit(model_version=ident["model_version"], model_id=ident["model_id"],
+                                         verdict=result.verdict,
                                          summary=result.summary(), readings_file=str(readings_csv))
         if report_path is not None:
 
@@ -358,7 +361,7 @@ def _recalibrate(bundle, hist, result: AuditResult, *, tracking_uri=None) -> dic
             f"--recalibrate needs at least {result.settings.min_n} matched in-family readings; "
             f"got {len(m)}. Take more hands-on readings or widen the time window."
         )
-    feats = hist.features(model_version=result.model["model_version"], content_hashes=m["est_content_hash"])
+    feats = hist.features(model_id=result.model["model_id"], content_hashes=m["est_content_hash"])
     missing = [h for h in m["est_content_hash"] if h not in feats.index]
     if missing:
         raise InputError(f"{len(missing)} matched capture(s) have no stored features in the history; "

@@ -1,7 +1,11 @@
 """The scoring history: every estimate ever issued, in a real database (SQLAlchemy).
 
-One row per (capture content hash, model version): a capture scored twice by the
-same model is stored once, so counts, trends and audits never double count. The
+One row per (capture content hash, model id): a capture scored twice by the same model is
+stored once, so counts, trends and audits never double count. The model id is the bundle's
+content identity (:attr:`waneguide.models.bundle.ModelBundle.model_id`, a hash of every file
+of the bundle), not its version label: two different models that are both "v001" (trained
+into two stores) never share rows. Both are stored and shown. Rows written through this API
+without a ``model_id`` use the version label in its place. The
 history is append-only (rows are inserted, never updated or deleted) and every
 batch of rows goes in one transaction, so an interrupted scoring run leaves each
 finished batch intact and a rerun only does the rest.
@@ -16,7 +20,7 @@ A fleet points ``db_url`` at a server database instead (any SQLAlchemy URL, e.g.
 Tables
 ------
 ``scores``
-    One row per scored capture: identity (``content_hash``, ``model_version``,
+    One row per scored capture: identity (``content_hash``, ``model_id``, ``model_version``,
     ``family_name``, ``family_fingerprint``), capture metadata (``file``,
     ``path_id``, ``captured_at``, ``temperature_c``), the estimates and bands in
     percent of nominal thickness and in mm, ``exceed_probability`` (with the
@@ -65,6 +69,7 @@ DB_URL_ENV = "WANEGUIDE_DB"
 _SCORE_SCHEMA: dict[str, str] = {
     "content_hash": "str",
     "model_version": "str",
+    "model_id": "str",
     "family_name": "str",
     "family_fingerprint": "str",
     "file": "text",
@@ -94,6 +99,9 @@ _SCORE_SCHEMA: dict[str, str] = {
 
 #: Columns of the ``scores`` table, in order (the autoincrement ``id`` comes first in the table).
 SCORE_COLUMNS = tuple(_SCORE_SCHEMA)
+#: A row's identity: one estimate per capture content and model content.
+_KEY = ("content_hash", "model_id")
+_REQUIRED = ("content_hash", "model_version", "model_id")
 
 
 def resolve_db_url(db_url: str | None) -> str:
@@ -203,6 +211,7 @@ class History:
         self.busy_timeout_s = float(busy_timeout_s)
         self._engine = None
         self._tables = None
+        self._returning = False
 
     # -- engine and schema -----------------------------------------------------------
     @property
@@ -212,10 +221,41 @@ class History:
     @property
     def engine(self):
         if self._engine is None:
-            self._engine = self._make_engine()
+            engine = self._make_engine()
             self._tables = self._define_tables()
-            self._tables["metadata"].create_all(self._engine)
+            self._create_schema(engine)
+            self._engine = engine
         return self._engine
+
+    def _create_schema(self, engine) -> None:
+        """Create the tables once, safely when several processes open a new database at once.
+
+        ``create_all`` checks and creates in two steps, so concurrent first use races (SQLite:
+        "database is locked"; PostgreSQL: a duplicate table). Each attempt runs in its own
+        transaction and is retried; a table that a concurrent process created meanwhile is fine.
+        Then the stored schema is checked against this version's.
+        """
+        md = self._tables["metadata"]
+        for attempt in range(40):
+            try:
+                with engine.connect() as conn:
+                    conn = conn.execution_options(waneguide_write=True)
+                    with conn.begin():
+                        md.create_all(conn, checkfirst=True)
+                break
+            except Exception as exc:  # noqa: BLE001 - retried only for the races named above
+                text = str(exc).lower()
+                racing = self._is_busy(exc) or "already exists" in text or "duplicate" in text
+                if not racing or attempt == 39:
+                    raise
+                time.sleep(0.05 * (1 + attempt % 8))
+        have = {c["name"] for c in sa.inspect(engine).get_columns("scores")}
+        missing = [c for c in SCORE_COLUMNS if c not in have]
+        if missing:
+            raise InputError(
+                f"history database {self._safe_url()} was written by an earlier waneguide (its scores table has "
+                f"no {', '.join(missing)}); nothing was changed. Give a new --db for this version, and keep the "
+                "old file for its records.")
 
     def _make_engine(self):
 
@@ -278,10 +318,10 @@ class History:
         types = {"str": sa.String(255), "text": sa.Text(), "float": sa.Float(), "bool": sa.Boolean(), "int": sa.Integer()}
         cols = [sa.Column("id", sa.Integer, primary_key=True, autoincrement=True)]
         for name, kind in _SCORE_SCHEMA.items():
-            cols.append(sa.Column(name, types[kind], nullable=name not in ("content_hash", "model_version")))
+            cols.append(sa.Column(name, types[kind], nullable=name not in _REQUIRED))
         scores = sa.Table(
             "scores", md, *cols,
-            sa.UniqueConstraint("content_hash", "model_version", name="uq_scores_capture_model"),
+            sa.UniqueConstraint("content_hash", "model_id", name="uq_scores_capture_model_id"),
             sa.Index("ix_scores_path_time", "path_id", "captured_at"),
         )
         audits = sa.Table(
@@ -289,6 +329,7 @@ class History:
             sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
             sa.Column("run_at", sa.String(40), nullable=False),
             sa.Column("model_version", sa.String(255), nullable=False),
+            sa.Column("model_id", sa.String(255)),
             sa.Column("readings_file", sa.Text()),
             sa.Column("verdict", sa.String(40), nullable=False),
             sa.Column("summary_json", sa.Text()),
@@ -327,6 +368,7 @@ class History:
             for key in ("content_hash", "model_version"):
                 if not rec[key]:
                     raise InputError(f"history row {i}: {key} is required; got {row.get(key)!r}.")
+            rec["model_id"] = rec["model_id"] or rec["model_version"]
             rec["scored_at"] = rec["scored_at"] or stamp
             rec["status"] = rec["status"] or "scored"
             out.append(rec)
@@ -351,7 +393,7 @@ class History:
         # Duplicates inside one batch: keep the first.
         seen, unique = set(), []
         for r in recs:
-            key = (r["content_hash"], r["model_version"])
+            key = (r["content_hash"], r["model_id"])
             if key not in seen:
                 seen.add(key)
                 unique.append(r)
@@ -361,6 +403,10 @@ class History:
             try:
                 with self._write() as conn, conn.begin():
                     res = conn.execute(stmt, unique)
+                    if self._returning:
+                        # the rows the database inserted (RETURNING): a driver's rowcount for a
+                        # multi-row INSERT ... ON CONFLICT DO NOTHING counts the skipped ones too
+                        return len(res.all())
                     return int(res.rowcount if res.rowcount is not None and res.rowcount >= 0 else len(unique))
             except Exception as exc:  # noqa: BLE001 - retried only when the database is busy
                 if not self._is_busy(exc) or attempt == 19:
@@ -374,10 +420,11 @@ class History:
 
     def _insert_ignore(self, table):
         name = self.engine.dialect.name
+        self._returning = name in ("sqlite", "postgresql")
         if name == "sqlite":
-            return sqlite_insert(table).on_conflict_do_nothing(index_elements=["content_hash", "model_version"])
+            return sqlite_insert(table).on_conflict_do_nothing(index_elements=list(_KEY)).returning(table.c.id)
         if name == "postgresql":
-            return postgresql_insert(table).on_conflict_do_nothing(index_elements=["content_hash", "model_version"])
+            return postgresql_insert(table).on_conflict_do_nothing(index_elements=list(_KEY)).returning(table.c.id)
         if name in ("mysql", "mariadb"):
             return table.insert().prefix_with("IGNORE")
         raise InputError(f"history database dialect {name!r} is not supported; use SQLite or PostgreSQL.")
@@ -387,24 +434,29 @@ class History:
         text = str(exc).lower()
         return "database is locked" in text or "database is busy" in text
 
-    def scored_hashes(self, model_version: str) -> set[str]:
-        """Content hashes already scored by ``model_version``."""
-
-        t = self._tables_ready()["scores"]
-        with self.engine.connect() as conn:
-            res = conn.execute(sa.select(t.c.content_hash).where(t.c.model_version == str(model_version)))
-            return {r[0] for r in res}
-
-    def count(self, *, model_version: str | None = None) -> int:
-
-        t = self._tables_ready()["scores"]
-        q = sa.select(sa.func.count()).select_from(t)
+    def _where(self, q, t, model_version, model_id):
         if model_version is not None:
             q = q.where(t.c.model_version == str(model_version))
+        if model_id is not None:
+            q = q.where(t.c.model_id == str(model_id))
+        return q
+
+    def scored_hashes(self, model_version: str | None = None, *, model_id: str | None = None) -> set[str]:
+        """Content hashes already scored by the model ``model_id`` (or, without it, ``model_version``)."""
+        t = self._tables_ready()["scores"]
+        if model_id is None and model_version is None:
+            raise InputError("scored_hashes needs model_id (or model_version)")
+        q = self._where(sa.select(t.c.content_hash), t, None if model_id is not None else model_version, model_id)
+        with self.engine.connect() as conn:
+            return {r[0] for r in conn.execute(q)}
+
+    def count(self, *, model_version: str | None = None, model_id: str | None = None) -> int:
+        t = self._tables_ready()["scores"]
+        q = self._where(sa.select(sa.func.count()).select_from(t), t, model_version, model_id)
         with self.engine.connect() as conn:
             return int(conn.execute(q).scalar_one())
 
-    def scores(self, *, model_version: str | None = None, path_id: str | None = None,
+    def scores(self, *, model_version: str | None = None, model_id: str | None = None, path_id: str | None = None,
                content_hashes: Iterable[str] | None = None, with_features: bool = False):
         """Stored score rows as a DataFrame, ordered by path and capture time.
 
@@ -413,9 +465,7 @@ class History:
 
         t = self._tables_ready()["scores"]
         cols = [t.c.id] + [t.c[n] for n in SCORE_COLUMNS if with_features or n != "features_json"]
-        q = sa.select(*cols)
-        if model_version is not None:
-            q = q.where(t.c.model_version == str(model_version))
+        q = self._where(sa.select(*cols), t, model_version, model_id)
         if path_id is not None:
             q = q.where(t.c.path_id == str(path_id))
         frames = []
@@ -436,10 +486,11 @@ class History:
                 df[name] = pd.to_numeric(df[name], errors="coerce").astype(float)
         return df
 
-    def features(self, *, model_version: str | None = None, content_hashes: Iterable[str] | None = None):
+    def features(self, *, model_version: str | None = None, model_id: str | None = None,
+                 content_hashes: Iterable[str] | None = None):
         """Stored numeric features, one row per score row (index ``content_hash``)."""
-
-        df = self.scores(model_version=model_version, content_hashes=content_hashes, with_features=True)
+        df = self.scores(model_version=model_version, model_id=model_id, content_hashes=content_hashes,
+                         with_features=True)
         recs = []
         for h, blob in zip(df["content_hash"], df["features_json"]):
             rec = json.loads(blob) if isinstance(blob, str) and blob else {}
@@ -453,12 +504,13 @@ class History:
 
     # -- audits ----------------------------------------------------------------------
     def add_audit(self, *, model_version: str, verdict: str, summary: Mapping[str, Any],
-                  readings_file: str | None = None) -> int:
+                  readings_file: str | None = None, model_id: str | None = None) -> int:
         """Append one audit record; returns its id."""
         t = self._tables_ready()["audits"]
         rec = {
             "run_at": _now_iso(),
             "model_version": str(model_version),
+            "model_id": None if model_id is None else str(model_id),
             "readings_file": readings_file,
             "verdict": str(verdict),
             "summary_json": json.dumps(summary, default=_json_default, sort_keys=True),

@@ -290,7 +290,7 @@ def render_report(*, scores, audit=None, model: Mapping[str, Any] | None = None,
 
     # identity
     ident_rows = [
-        ("model version", model.get("model_version")), ("family", name),
+        ("model version", model.get("model_version")), ("model id", model.get("model_id")), ("family", name),
         ("family fingerprint", model.get("family_fingerprint")), ("family description", model.get("family_description")),
         ("material", model.get("material")), ("nominal flange thickness [mm]", model.get("nominal_thickness_mm")),
         ("path length (transducer spacing) [mm]", model.get("path_length_mm")),

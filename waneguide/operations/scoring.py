@@ -62,7 +62,7 @@ SCORE_OUTPUT_COLUMNS = (
     "mean_loss_pct", "mean_loss_pct_lower", "mean_loss_pct_upper",
     "exceed_probability", "in_family", "mismatch_p_value", "mismatch_reasons", "quality_flags",
 )
-_EXTRA_COLUMNS = ("content_hash", "model_version", "status", "newly_scored", "limit_pct",
+_EXTRA_COLUMNS = ("content_hash", "model_version", "model_id", "status", "newly_scored", "limit_pct",
                   "max_loss_mm", "max_loss_mm_lower", "max_loss_mm_upper")
 _PREDICTION_COLUMNS = ("max_loss_pct", "max_loss_pct_lower", "max_loss_pct_upper", "max_loss_mm",
                        "max_loss_mm_lower", "max_loss_mm_upper", "mean_loss_pct", "mean_loss_pct_lower",
@@ -209,6 +209,7 @@ def _score_chunk(bundle, items: Sequence, baselines_by_path: dict, limit_pct, ba
         rec: dict[str, Any] = {
             "content_hash": capture_content_hash(cap),
             "model_version": str(bundle.version),
+            "model_id": bundle.model_id,
             "family_name": family.name,
             "family_fingerprint": bundle.family_fingerprint,
             "file": cap.source or "",
@@ -240,6 +241,26 @@ def _chunks(seq: list, size: int) -> list[list]:
 def _score_task(items, *, bundle, baselines_by_path, limit_pct, batch_id) -> list[dict]:
     """Runner task: score one chunk (the bundle and baselines are shared by every task)."""
     return _score_chunk(bundle, items, baselines_by_path, limit_pct, batch_id)
+
+
+def _exceedance_for(stored, bundle, hist: History, limit_pct: float | None):
+    """Stored rows with ``exceed_probability`` for the limit asked now, not the one they were scored with.
+
+    The history keeps what was issued (append-only); a capture shown again for another limit gets
+    the exceedance recomputed from its stored features, and ``limit_pct`` says which limit it is.
+    """
+    stored = stored.copy()
+    old = pd.to_numeric(stored["limit_pct"], errors="coerce").to_numpy(float)
+    want = np.nan if limit_pct is None else float(limit_pct)
+    differs = ~((old == want) | (np.isnan(old) & np.isnan(want)))
+    stored.loc[differs, "limit_pct"] = want
+    stored.loc[differs, "exceed_probability"] = np.nan
+    redo = differs & (stored["status"] == "scored").to_numpy() & np.isfinite(want)
+    if redo.any():
+        hashes = stored.loc[redo, "content_hash"]
+        feats = hist.features(model_id=bundle.model_id, content_hashes=hashes).reindex(hashes)
+        stored.loc[redo, "exceed_probability"] = bundle.exceedance(feats.reset_index(drop=True), want)
+    return stored
 
 
 def check_limit_pct(limit_pct, option: str = "limit_pct") -> float | None:
@@ -302,6 +323,9 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
     if int(chunk_size) < 1:
         raise InputError(f"chunk_size must be a positive integer; got {chunk_size!r}.")
     bundle = load_model(bundle, tracking_uri=tracking_uri)
+    if not bundle.model_id:
+        raise InputError("the model bundle has no content id: it was never saved. Save it (ModelBundle.save) or "
+                         "give its folder; the history keys every estimate by the saved bundle's id.")
     family = bundle.family
     if limit_pct is None:  # the family file may state the limit ([limits] wall_loss_limit_pct)
         limit_pct = family.limits.wall_loss_limit_pct
@@ -309,7 +333,7 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
     by_path = _baselines(baselines, captures, family)
     hist = History(db_url)
     try:
-        done = hist.scored_hashes(str(bundle.version))
+        done = hist.scored_hashes(model_id=bundle.model_id)
         checks = [_check_item(it, family, done, by_path) for it in items]
         refusals = [c[2] for c in checks if c[2]]
         if refusals:
@@ -331,7 +355,8 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
                                  unit="capture", weight=lambda k: len(chunks[k])):
             hist.add_scores(rows)
             new_hashes.update(r["content_hash"] for r in rows)
-        stored = hist.scores(model_version=str(bundle.version), content_hashes=hashes)
+        stored = hist.scores(model_id=bundle.model_id, content_hashes=hashes)
+        stored = _exceedance_for(stored, bundle, hist, limit_pct)
     finally:
         hist.close()
     stored = stored.drop_duplicates("content_hash").set_index("content_hash")
