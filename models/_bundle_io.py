@@ -33,7 +33,7 @@ from waneguide.models.mismatch import PhysicsChecker
 
 __all__ = [
     "BUNDLE_FORMAT", "BUNDLE_SCHEMA_VERSION", "TRUSTED_TYPES", "VERSION_RE", "family_to_toml", "jsonable",
-    "content_id", "next_version_dir", "read_bundle_dir", "write_bundle_dir",
+    "IN_SERVICE_FILE", "content_id", "in_service_version", "next_version_dir", "set_in_service", "read_bundle_dir", "write_bundle_dir",
 ]
 
 BUNDLE_FORMAT = "waneguide-model-bundle"
@@ -211,9 +211,51 @@ def content_id(files: dict[str, str]) -> str:
 # ---------------------------------------------------------------------------
 # reading
 # ---------------------------------------------------------------------------
+#: File in a model store naming the version in service (one line, e.g. ``v002``).
+IN_SERVICE_FILE = "IN_SERVICE"
+
+
+def in_service_version(store: str | os.PathLike) -> str | None:
+    """The version named by ``store/IN_SERVICE``, or None when the store has no such file."""
+    f = Path(store) / IN_SERVICE_FILE
+    if not f.is_file():
+        return None
+    name = f.read_text().strip()
+    if not VERSION_RE.match(name):
+        raise InputError(f"{str(f)!r} must hold one version name like v002; got {name[:40]!r}. "
+                         "Set it with `waneguide promote`.")
+    return name
+
+
+def set_in_service(store: str | os.PathLike, version: str) -> Path:
+    """Point ``store/IN_SERVICE`` at ``version`` (atomic replace); the version must load."""
+    store = Path(store)
+    if not VERSION_RE.match(str(version)) or not (store / str(version) / "bundle.json").is_file():
+        have = sorted(p.name for p in store.iterdir() if VERSION_RE.match(p.name)) if store.is_dir() else []
+        raise InputError(f"model store {str(store)!r} has no version {version!r}; versions there: {have or 'none'}")
+    tmp = store / f".{IN_SERVICE_FILE}.part"
+    tmp.write_text(f"{version}\n")
+    os.replace(tmp, store / IN_SERVICE_FILE)
+    return store / IN_SERVICE_FILE
+
+
 def _resolve_dir(path: Path) -> Path:
+    """A version folder as given; for a store, the version in service (``IN_SERVICE``), else the newest.
+
+    The one rule every command follows: a store folder means its in-service version. ``train``
+    sets it when it adds a version; ``audit --recalibrate`` writes a challenger without moving
+    it; ``promote`` and ``rollback`` move it. A store without the file (written by hand or by
+    the library alone) serves its newest version.
+    """
     if (path / "bundle.json").is_file():
         return path
+    current = in_service_version(path) if path.is_dir() else None
+    if current is not None:
+        d = path / current
+        if not (d / "bundle.json").is_file():
+            raise InputError(f"model store {str(path)!r}: {IN_SERVICE_FILE} names {current}, which is missing; "
+                             "restore it or `waneguide promote` another version")
+        return d
     if path.is_dir():
         versions = sorted((int(m.group(1)), p) for p in path.iterdir()
                           if (m := VERSION_RE.match(p.name)) and (p / "bundle.json").is_file())

@@ -49,11 +49,14 @@ from waneguide.models._bundle_io import (
     BUNDLE_FORMAT,
     BUNDLE_SCHEMA_VERSION,
     TRUSTED_TYPES,
+    IN_SERVICE_FILE,
     VERSION_RE,
     family_to_toml,
+    in_service_version,
     jsonable,
     next_version_dir,
     read_bundle_dir,
+    set_in_service,
     write_bundle_dir,
 )
 from waneguide.models._target import TARGETS, TargetModel, TrainingDomain, frame_X
@@ -63,6 +66,9 @@ from waneguide.models.mismatch import combine_mismatch
 from waneguide.models.residual import ResidualCorrector
 
 __all__ = [
+    "IN_SERVICE_FILE",
+    "in_service_version",
+    "set_in_service",
     "BUNDLE_FORMAT",
     "BUNDLE_SCHEMA_VERSION",
     "TARGETS",

@@ -47,9 +47,11 @@ def test_envelope_of_tone_burst_is_its_window():
 @pytest.mark.parametrize("delay", [0.3, 7.77, 23.51])
 def test_every_estimator_recovers_fractional_delay(delay):
     # issue 4 check: a tone burst delayed by a known non-integer number of samples is
-    # recovered within 0.05 sample by every estimator at high SNR (66 dB peak-to-noise here;
-    # the threshold crossing, the noisiest, then has a spread near 0.01 sample). The 0.05 sample
-    # is the acceptance figure of issue 4 (a project requirement; common practice, no source).
+    # recovered within 0.05 sample by every estimator at high SNR (66 dB peak-to-noise here). The
+    # 0.05 sample is the acceptance figure of issue 4 (a project requirement; common practice, no
+    # source). At this SNR the envelope peak and the threshold crossing, the noisiest, scatter by
+    # about 0.025 and 0.02 sample over noise draws (regression values of this code), so the limit is
+    # about two of their spreads: these seeded draws pass, not every seed would.
     rng = np.random.default_rng(int(delay * 100))
     ref = _burst(0.0)
     x = _burst(delay) + 5e-4 * rng.normal(size=N)
@@ -107,6 +109,7 @@ def test_xcorr_spread_within_twice_cramer_rao(snr_db):
     for name, values in (("parabolic", est.parabolic), ("phase_slope", est.phase_slope)):
         ratio = np.std(values - delay) / bound
         assert 0.8 < ratio < 2.0, (name, snr_db, ratio)
-        # no bias beyond the spread: the mean of 400 trials has a standard error of bound/20 or less, so
-        # 3 x bound is a loose limit (common practice, no source)
+        # no bias beyond the spread: the mean of 400 trials has a standard error of std/20, under bound/10
+        # given the ratio above, so 3 x bound is over 30 standard errors: a loose limit (common practice,
+        # no source)
         assert abs(np.mean(values) - delay) < 3 * bound

@@ -1,10 +1,16 @@
 """Audit arithmetic on a small example computed by hand (numbers worked out in the comments).
 
 Sources of the formulas: Student-t interval for a mean (any statistics handbook;
-t_{0.975, 3} = 3.1824 from the t table, e.g. NIST/SEMATECH e-Handbook of Statistical
-Methods, table 1.3.6.7.2); Clopper and Pearson (1934) exact binomial interval, i.e.
-Beta quantiles (checked against scipy.stats.beta); the trapezoid rule for the mean
-thickness along the path.
+t_{0.975, 3} = 3.1824 and t_{0.975, 4} = 2.7764 from the t table, e.g. NIST/SEMATECH
+e-Handbook of Statistical Methods, table 1.3.6.7.2, and scipy.stats.t); Clopper and Pearson
+(1934) exact binomial interval, i.e. Beta quantiles (scipy.stats.beta, and in closed form where
+a Beta CDF is a polynomial); the trapezoid rule for the mean thickness along the path;
+Page-Hinkley / CUSUM recursion g_n = max(0, g_{n-1} + z_n - delta) (Page 1954).
+
+Tolerances: a bare ``pytest.approx(x)`` is pytest's default relative 1e-6. The values it
+guards are exact decimal arithmetic done in floating point (error a few 1e-16 relative), so
+the default is loose by design (common practice, no source). Where a tolerance follows
+from the digits a hand value is quoted to, the comment says so.
 """
 from __future__ import annotations
 
@@ -21,8 +27,10 @@ from waneguide.operations.audit import (
     format_audit,
     reading_targets,
     residual_summary,
+    run_audit,
     standardised_residuals,
 )
+from waneguide.operations.history import sqlite_file
 from waneguide.operations.readings import read_readings
 
 NOMINAL_MM = 2.0
@@ -79,6 +87,7 @@ def test_targets_from_readings(readings):
     # trapezoid: [(2.0+1.8)/2 * 100 + (1.8+2.0)/2 * 200] / 300 = (190 + 380) / 300 = 1.9 mm -> 5 % mean loss
     srv = s.loc[("P1", "2024-03-01")]
     assert srv["n_readings"] == 3 and srv["max_loss_pct"] == pytest.approx(10.0)
+    # abs 1e-12: a dozen float operations on numbers of order 100 round to ~1e-13 (common practice, no source)
     assert srv["mean_loss_pct"] == pytest.approx(5.0, abs=1e-12)
     # u(mean): weights w = (50, 150, 100)/300 of 0.02 mm each -> 0.02 sqrt(50^2+150^2+100^2)/300 = 0.012472 mm
     assert srv["u_mean_loss_pct"] == pytest.approx(100 * 0.02 * np.sqrt(50**2 + 150**2 + 100**2) / 300 / 2.0)
@@ -107,21 +116,58 @@ def test_hand_computed_audit(readings):
     r = np.array([2.0, -2.0, 4.0, -1.0, 1.0])
     assert sm["n"] == 5
     assert sm["bias"] == pytest.approx(0.8)                       # 4 / 5
-    sd = np.sqrt(np.sum((r - 0.8) ** 2) / 4)                      # = sqrt(22.8 / 4) = 2.3875
+    sd = np.sqrt(np.sum((r - 0.8) ** 2) / 4)                      # = sqrt(22.8 / 4) = 2.387467
+    # rel 1e-6: the hand value is quoted to 7 significant digits (sqrt 5.7 = 2.38746728)
     assert sm["sd"] == pytest.approx(2.387467, rel=1e-6) and sd == pytest.approx(sm["sd"])
-    # t_{0.975, 4} = 2.7764 (t table); half-width 2.7764 * 2.3875 / sqrt 5 = 2.9644
+    # t_{0.975, 4} = 2.7764 (t table); half-width 2.7764 * 2.3875 / sqrt 5 = 2.9644. abs 2e-4: the
+    # table value and the half-width are quoted to 4 decimals, each worth up to 5e-5 here
     assert sm["bias_lower"] == pytest.approx(0.8 - 2.9644, abs=2e-4)
     assert sm["bias_upper"] == pytest.approx(0.8 + 2.9644, abs=2e-4)
+    # the same interval from scipy's Student-t: the arithmetic is the same up to its order, so rel 1e-12
+    # (an identity in floating point; common practice, no source)
+    t_lo, t_hi = stats.t.interval(0.95, df=4, loc=0.8, scale=sd / np.sqrt(5))
+    assert (sm["bias_lower"], sm["bias_upper"]) == pytest.approx((t_lo, t_hi), rel=1e-12)
     assert sm["rmse"] == pytest.approx(np.sqrt(26 / 5))           # sum r^2 = 4+4+16+1+1 = 26
+    assert sm["mae"] == pytest.approx(2.0)                         # (2+2+4+1+1) / 5
+    assert sm["mean_band_width"] == pytest.approx(6.0)             # widths 8, 6, 4, 8, 4
     # inside the band: 10 in [8,16] yes, 20 in [15,21] yes, 5 in [7,11] no, 25 in [20,28] yes, 10 in [9,13] yes
     assert (sm["covered"], sm["coverage"]) == (4, 0.8)
-    # Clopper-Pearson 95 %: [Beta(0.025; 4, 2), Beta(0.975; 5, 1)] = [0.2836, 0.9949]
+    # Clopper-Pearson 95 %: [Beta(0.025; 4, 2), Beta(0.975; 5, 1)] = [0.2836, 0.9949]. rel 1e-9: two
+    # evaluations of one Beta quantile (ppf against the library's isf route; common practice, no source)
     assert sm["coverage_lower"] == pytest.approx(stats.beta.ppf(0.025, 4, 2), rel=1e-9)
     assert sm["coverage_upper"] == pytest.approx(stats.beta.ppf(0.975, 5, 1), rel=1e-9)
-    assert sm["coverage_lower"] == pytest.approx(0.2836, abs=1e-4)
+    # closed forms: Beta(5, 1) has CDF x^5, so the upper end is 0.975^(1/5) = 0.994949 (rel 1e-12, a
+    # floating-point identity); Beta(4, 2) has CDF 5x^4 - 4x^5, which equals 0.025 at x = 0.283582, the
+    # lower end (rel 1e-9 on the CDF: a quantile solver's accuracy; abs 1e-6: the 6 quoted decimals;
+    # both common practice, no source)
+    assert sm["coverage_upper"] == pytest.approx(0.975 ** 0.2, rel=1e-12)
+    x = sm["coverage_lower"]
+    assert 5 * x**4 - 4 * x**5 == pytest.approx(0.025, rel=1e-9)
+    assert x == pytest.approx(0.283582, abs=1e-6)
+
+    # standardised residuals in date order a, c, b, d, e: z = r / sqrt((h / z_0.95)^2 + u^2), h the band's
+    # half-width on the truth's side, u the reading's uncertainty in % (0.02 mm -> 1 %, 0.05 mm -> 2.5 %,
+    # blank -> 0): a 2/sqrt((4/z)^2+1), c 4/sqrt((2/z)^2+1), b -2/(3/z), d -1/sqrt((4/z)^2+2.5^2),
+    # e 1/sqrt((2/z)^2+1) = 0.7606, 2.5408, -1.0966, -0.2867, 0.6352
+    z95 = stats.norm.ppf(0.95)
+    z_hand = [2 / np.hypot(4 / z95, 1), 4 / np.hypot(2 / z95, 1), -2 / (3 / z95), -1 / np.hypot(4 / z95, 2.5),
+              1 / np.hypot(2 / z95, 1)]
+    d = res.drift["max_loss_pct"]
+    np.testing.assert_allclose(d["z"], z_hand, rtol=1e-12)   # same formula, float rounding only
+    # Page-Hinkley up side, delta 0.5: g = 0.2606, 2.3014, 0.7049, 0, 0.1352; its largest value 2.30 is
+    # below lambda = 5, and the down side peaks at 0.597 (-z_b - 0.5): no alarm
+    g, prev = [], 0.0
+    for zi in z_hand:
+        prev = max(0.0, prev + zi - 0.5)
+        g.append(prev)
+    np.testing.assert_allclose(d["result"].statistic_up, g, rtol=1e-12, atol=1e-15)
+    assert d["result"].statistic_up.max() == pytest.approx(2.3014, abs=1e-4)   # 4 quoted decimals
+    assert not d["result"].alarm
 
     mean = res.summaries["mean_loss_pct"]
     assert mean["n"] == 1 and mean["bias"] == pytest.approx(4.0 - 5.0)   # capture e says 4 %, survey 5 %
+    # no rule fires: the bias CI [-2.16, +3.76] holds 0, the coverage CI's upper end 0.995 is above 0.9,
+    # no Page-Hinkley alarm, and mean_loss_pct has 1 reading (< 3): the verdict is "in control"
     assert res.verdict == "in control"
     assert any("fewer than 3" in n for n in res.notes)
     # unmatched list: P3 survey and the off-path reading, each with its reason
@@ -132,11 +178,15 @@ def test_hand_computed_audit(readings):
 
 
 def test_t_interval_small_case():
-    # n = 4, residuals 2, -2, 4, -1: mean 0.75, s = 2.7538; t_{0.975,3} = 3.1824 -> [-3.632, 5.132]
+    # n = 4, residuals 2, -2, 4, -1: mean 0.75, s = sqrt(22.75 / 3) = 2.7538; t_{0.975,3} = 3.1824
+    # -> [-3.632, 5.132]. abs 1e-3: the quoted 4-5 digit factors carry up to 1.5e-4 here
     sm = residual_summary([12, 18, 9, 24], [8, 15, 7, 20], [16, 21, 11, 28], [10, 20, 5, 25],
                           coverage_nominal=0.9)
     assert sm["bias_lower"] == pytest.approx(0.75 - 3.1824 * 2.7538 / 2, abs=1e-3)
     assert sm["bias_upper"] == pytest.approx(0.75 + 3.1824 * 2.7538 / 2, abs=1e-3)
+    # scipy's Student-t interval for the same four residuals; rel 1e-12: a floating-point identity
+    t_lo, t_hi = stats.t.interval(0.95, df=3, loc=0.75, scale=np.sqrt(22.75 / 3) / 2)
+    assert (sm["bias_lower"], sm["bias_upper"]) == pytest.approx((t_lo, t_hi), rel=1e-12)
 
 
 def test_standardised_residuals_and_calibration():
@@ -159,6 +209,9 @@ def test_rules_fire_as_written():
     biased = residual_summary(np.arange(10) + 5.0, np.arange(10) + 3.0, np.arange(10) + 7.0,
                               np.arange(10) + 0.0, coverage_nominal=0.9)
     verdict, reasons, _ = decide({"max_loss_pct": biased}, {}, None, oof_share_observed=0.0, settings=s)
+    # every residual is +5 with zero spread, so the bias CI is [5, 5]; no reading lies in its band
+    # (|5| > 2), k = 0 of 10, Clopper-Pearson upper end 1 - 0.025^(1/10) = 0.308 < 0.9
+    assert biased["coverage_upper"] == pytest.approx(1 - 0.025 ** 0.1, rel=1e-9)   # as above
     assert verdict == "recalibrate"
     assert any("bias +5.00" in r for r in reasons) and any("below nominal 90%" in r for r in reasons)
     ft = pd.DataFrame({"feature": ["f"], "drifted": [True], "psi": [0.6], "q_value": [1e-6], "outside_share": [0.3]})
@@ -193,7 +246,13 @@ def test_drift_alarm_in_audit(tmp_path):
                        coverage_nominal=0.9)
     d = res.drift["max_loss_pct"]
     assert d["result"].alarm and d["result"].direction == "down"
-    assert 15 <= d["result"].alarm_index <= 18      # Siegmund ARL at a 5-sigma step ~ 1.2 readings
+    # After the step the standardised residuals are N(-5, 1): the down statistic grows by 4.5 +- 1 per
+    # reading, so it passes lambda = 5 within two readings with probability Phi(4 / sqrt 2) = 0.998 and
+    # within the four readings 15..18 with 1 - Phi(-13 / 2) = 1 - 4e-11 (Siegmund's ARL at a 5-sigma
+    # shift: 1.35 readings). The lower end 15
+    # says no false alarm came first: for a seed drawn at random that has probability exp(-15 / 465) = 0.97
+    # (in-control ARL 465, tests/test_drift.py); this seed has none.
+    assert 15 <= d["result"].alarm_index <= 18
     assert res.verdict == "recalibrate"
 
 
@@ -257,9 +316,6 @@ def test_infinite_band_counts_as_matched_and_covering():
 
 def test_audit_refuses_a_missing_history_file_without_creating_it(tmp_path):
     # Auditing only reads the history: a mistyped SQLite path must be refused, not created empty.
-    from waneguide.operations.audit import run_audit
-    from waneguide.operations.history import sqlite_file
-
     assert sqlite_file("sqlite:////tmp/x/h.db").as_posix() == "/tmp/x/h.db"
     assert sqlite_file("sqlite:///:memory:") is None
     assert sqlite_file("postgresql://u@127.0.0.1/db") is None

@@ -12,10 +12,16 @@ import re
 from contextlib import redirect_stderr, redirect_stdout
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
 from tests.conftest import FAMILY_FB2
 from waneguide.cli.main import main
+from waneguide.core.atomic import check_output_dir, check_output_path
+from waneguide.features.io import read_capture
+from waneguide.operations.readings import read_readings
+from waneguide.simulation.campaign import run_campaign
+from waneguide.simulation.export import export_campaign_captures
 
 
 def run_cli(*argv):
@@ -33,9 +39,6 @@ def snapshot(folder: Path) -> dict:
 @pytest.fixture(scope="module")
 def work(tmp_path_factory):
     """A tiny campaign, a few exported captures and a set of bad inputs (about 2 s)."""
-    from waneguide.simulation.campaign import run_campaign
-    from waneguide.simulation.export import export_campaign_captures
-
     w = tmp_path_factory.mktemp("badinput")
     run_campaign(FAMILY_FB2, 24, w / "camp", seed=3, n_jobs=1, progress=False)
     idx = export_campaign_captures(w / "camp", w / "caps", cases=range(4), fmt="csv")
@@ -158,21 +161,17 @@ def test_capture_without_sample_rate_header_pairs_with_its_baseline(work, tmp_pa
     rc, _, err = run_cli("features", "--family", FAM, "--captures", work["w"] / "no_rate.csv",
                          "--baselines", work["base"], "--out", out)
     assert rc == 0, err
-    import pandas as pd
-
-    from waneguide.features.io import read_capture
-
     no_rate = read_capture(work["w"] / "no_rate.csv")
     with_rate = read_capture(work["first"])
-    # the rate read from the time axis is the header's to float rounding (8,192 steps of 1e-7 s)
-    assert no_rate.sample_rate_hz == pytest.approx(with_rate.sample_rate_hz, rel=1e-9)
+    # the rate read from the time axis, (n - 1) / (t_last - t_first), is the header's to float rounding:
+    # time_s is written in full (repr, 17 digits) and t = i / fs - pretrigger loses a few 1e-16 of the
+    # span, so rel 1e-12 (an identity in floating point; common practice, no source)
+    assert no_rate.sample_rate_hz == pytest.approx(with_rate.sample_rate_hz, rel=1e-12)
     assert len(pd.read_parquet(out)) == 1
 
 
 def test_out_folder_check_keeps_an_interrupted_campaign_resumable(work, tmp_path):
     """check_output_dir refuses files only: an existing campaign folder is still accepted (resume)."""
-    from waneguide.core.atomic import check_output_dir, check_output_path
-
     assert check_output_dir(work["w"] / "camp") == work["w"] / "camp"
     assert check_output_path(tmp_path / "new" / "deeper" / "x.csv") == tmp_path / "new" / "deeper" / "x.csv"
     with pytest.raises(ValueError, match="is an existing folder"):
@@ -184,8 +183,6 @@ def test_out_folder_check_keeps_an_interrupted_campaign_resumable(work, tmp_path
 def test_readings_date_must_be_iso_8601(tmp_path, text):
     """pd.Timestamp read '2nd of March' as year 1 (then 'nearest capture 738,885 days away') and
     03/02/2024 as March 2 (US order); the README promises ISO 8601 (ISO 8601-1:2019)."""
-    from waneguide.operations.readings import read_readings
-
     f = tmp_path / "r_date.csv"
     f.write_text(f"path_id,date,position_mm,remaining_thickness_mm,method\nP01,{text},100,1.6,UT\n")
     with pytest.raises(ValueError, match=r"r_date.csv: line 2, column date: must be an ISO 8601 date"):

@@ -4,6 +4,9 @@ Self-contained is checked by parsing the HTML (Python's html.parser): every ``sr
 ``href`` is a ``data:`` URI or an in-page anchor and no ``http(s)://``, ``//host`` or
 ``url(...)`` appears anywhere. Plots must be real PNGs (signature per the PNG spec,
 ISO/IEC 15948 sec. 5.2) that are not blank.
+
+The report prints its numbers with two decimals, so a printed value is held to the stored one
+within half a unit of the last digit, abs 0.005.
 """
 from __future__ import annotations
 
@@ -12,14 +15,16 @@ import io
 import re
 from html.parser import HTMLParser
 
+import matplotlib.image as mpimg
 import numpy as np
 import pandas as pd
 import pytest
 
+from waneguide.core.caution import CAUTION
 from waneguide.operations.audit import audit_frames
 from waneguide.operations.history import History
 from waneguide.operations.readings import read_readings
-from waneguide.operations.report import write_report
+from waneguide.operations.report import _scatter_figure, _trend_figure, write_report
 
 MODEL = {"model_version": "test-v1", "family_name": "demo-fb2", "family_fingerprint": "0123456789abcdef",
          "family_invented": True, "coverage_nominal": 0.9, "calibration_source": "simulated",
@@ -107,8 +112,6 @@ def parse_report(text):
 
 
 def png_pixels(data: bytes) -> np.ndarray:
-    import matplotlib.image as mpimg
-
     assert data[:8] == b"\x89PNG\r\n\x1a\n"
     return mpimg.imread(io.BytesIO(data), format="png")
 
@@ -133,8 +136,11 @@ def test_report_is_self_contained_and_plots_are_not_blank(tmp_path):
     for im in parsed.images:
         data = base64.b64decode(im["src"].split(",", 1)[1])
         px = png_pixels(data)
+        # at least 300 x 200 px, below which axis labels cannot be read (common practice, no source;
+        # these plots are 275-450 px high and 470-860 px wide, regression values)
         assert px.shape[0] > 200 and px.shape[1] > 300
-        # not blank: a plot has lines and text, so its pixels vary (a blank canvas has std 0)
+        # not blank: a blank canvas has std 0; lines and text on white give 0.13-0.33 here (regression
+        # values), 0.05 is a floor well under that (common practice, no source)
         assert px[..., :3].std() > 0.05
         assert im.get("alt")
 
@@ -155,12 +161,23 @@ def test_report_numbers_match_the_database(tmp_path):
     s = ex["audit"].summaries["max_loss_pct"]
     assert float(k["residual:max_loss_pct:bias"]) == pytest.approx(s["bias"], abs=0.005)
     assert int(k["residual:max_loss_pct:n"]) == s["n"] == 6
+    # the residuals recomputed from the database and build_example's readings, outside the audit code:
+    # each survey falls on a capture date (dt = 0), truth k % on P02 in weeks 4, 10, 16 (2.0 (1 - k/100) mm)
+    # and 0 % on P01 (2.0 mm); P09 has no capture
+    est = db.set_index("content_hash")["max_loss_pct"]
+    r = np.array([est[f"P02-{w}"] - w for w in (4, 10, 16)] + [est[f"P01-{w}"] for w in (4, 10, 16)])
+    assert float(k["residual:max_loss_pct:bias"]) == pytest.approx(r.mean(), abs=0.005)
+    assert float(k["residual:max_loss_pct:rmse"]) == pytest.approx(np.sqrt(np.mean(r**2)), abs=0.005)
+    assert float(k["residual:max_loss_pct:mae"]) == pytest.approx(np.mean(np.abs(r)), abs=0.005)
+    # all six readings lie in their +-3 % bands (unit-sigma errors; checked here, not assumed), so the
+    # coverage is 6/6 and its Clopper-Pearson 95 % lower end is 0.025^(1/6) = 0.541 (Beta(6, 1) CDF x^6)
+    assert np.all(np.abs(r) <= 3.0)
+    assert float(k["residual:max_loss_pct:coverage"]) == pytest.approx(1.0, abs=0.005)
+    assert float(k["residual:max_loss_pct:coverage_lower"]) == pytest.approx(0.025 ** (1 / 6), abs=0.005)
     assert k["verdict"] == ex["audit"].verdict
     assert int(k["n_matched"]) == 6 and int(k["n_surveys"]) == 7
     # family identity and the caution are on the page
     assert k["model:family fingerprint"] == MODEL["family_fingerprint"]
-    from waneguide.core.caution import CAUTION
-
     assert k["caution"] == CAUTION
 
 
@@ -179,7 +196,7 @@ def test_scores_only_report(tmp_path):
     text = out.read_text(encoding="utf-8")
     parsed = parse_report(text)
     assert_no_external_references(text, parsed)
-    assert "verdict" not in parsed.keyed and len(parsed.images) == 3
+    assert "verdict" not in parsed.keyed and len(parsed.images) == 3   # one trend per path, no audit plots
     assert "limit 15 %" not in text  # legends are inside the PNG, not the HTML
     assert parsed.keyed["model:limit for exceedance [% of nominal]"] == "15.0"
 
@@ -187,19 +204,16 @@ def test_scores_only_report(tmp_path):
 def test_figures_draw_infinite_bands_without_error():
     # k = ceil((n+1)(1-alpha)) > n gives an infinite conformal band (Vovk et al. 2005): the trend
     # and scatter figures must still render, with the band drawn to finite limits.
-    import pandas as pd
-
-    from waneguide.operations.report import _scatter_figure, _trend_figure
-
     rows = pd.DataFrame({"captured_at": pd.to_datetime(["2025-03-01", "2025-03-08"], utc=True),
                          "max_loss_pct": [5.0, 6.0], "max_loss_pct_lower": [-np.inf, 2.0],
                          "max_loss_pct_upper": [np.inf, 9.0], "mean_loss_pct": [1.0, 1.2],
                          "in_family": [True, True]})
     fig = _trend_figure("P01", rows, None, 15.0)
     lo, hi = fig.axes[0].get_ylim()
-    assert np.isfinite(lo) and np.isfinite(hi) and hi >= 9.0
+    # finite limits that still show the finite band's top (9.0) and the estimates (5, 6)
+    assert np.isfinite(lo) and np.isfinite(hi) and hi >= 9.0 and lo <= 5.0
     matched = pd.DataFrame({"max_loss_pct": [4.0, 7.0], "est_max_loss_pct": [5.0, 6.0],
                             "est_max_loss_pct_lower": [-np.inf, 2.0], "est_max_loss_pct_upper": [np.inf, 9.0]})
     fig2 = _scatter_figure(matched, 0.9)
     lo2, hi2 = fig2.axes[0].get_ylim()
-    assert np.isfinite(lo2) and np.isfinite(hi2)
+    assert np.isfinite(lo2) and np.isfinite(hi2) and lo2 <= 5.0 and hi2 >= 6.0   # the estimates are in view

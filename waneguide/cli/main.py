@@ -27,7 +27,7 @@ from typing import Sequence
 
 from waneguide.core.caution import CAUTION
 from waneguide.core.errors import WaneguideError
-from waneguide.core.settings import offline_defaults
+from waneguide.core.settings import mask_credentials, offline_defaults
 
 __all__ = ["main", "build_parser", "command_modules"]
 
@@ -78,7 +78,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _report(command: str, exc: BaseException) -> None:
-    msg = str(exc).strip().splitlines() or [type(exc).__name__]
+    msg = mask_credentials(str(exc)).strip().splitlines() or [type(exc).__name__]
     print(f"waneguide {command}: error: {msg[0]}", file=sys.stderr)
     for extra in msg[1:6]:
         print(f"  {extra}", file=sys.stderr)

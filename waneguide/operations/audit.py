@@ -432,7 +432,8 @@ def format_audit(result: AuditResult) -> str:
         reg = result.challenger.get("registered_version")
         lines.append(f"challenger: version {result.challenger['model_version']} at {result.challenger['bundle_path']}"
                      + (f", registered in MLflow as version {reg} with alias 'challenger'" if reg else "")
-                     + "; the model in service is unchanged")
+                     + "; the model in service is unchanged (put the challenger in service with "
+                       f"`waneguide promote --model STORE --version {result.challenger['model_version']} --note ...`)")
     if result.report_path:
         lines.append(f"report: {result.report_path}")
     lines.append(CAUTION)

@@ -29,6 +29,9 @@ Tables
     feature-drift checks in the audit).
 ``audits``
     One row per audit: when, which model, the verdict and a JSON summary.
+``service_changes``
+    One row per version moved into service (``promote``, ``rollback``): when, which store,
+    from and to which version, the OS user and the required note.
 """
 from __future__ import annotations
 
@@ -334,7 +337,19 @@ class History:
             sa.Column("verdict", sa.String(40), nullable=False),
             sa.Column("summary_json", sa.Text()),
         )
-        return {"metadata": md, "scores": scores, "audits": audits}
+        service = sa.Table(
+            "service_changes", md,
+            sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
+            sa.Column("changed_at", sa.String(40), nullable=False),
+            sa.Column("action", sa.String(20), nullable=False),
+            sa.Column("store", sa.Text(), nullable=False),
+            sa.Column("from_version", sa.String(255)),
+            sa.Column("to_version", sa.String(255), nullable=False),
+            sa.Column("model_id", sa.String(255)),
+            sa.Column("os_user", sa.String(255)),
+            sa.Column("note", sa.Text(), nullable=False),
+        )
+        return {"metadata": md, "scores": scores, "audits": audits, "service_changes": service}
 
     def _write(self):
         """A connection context for one write transaction (BEGIN IMMEDIATE on SQLite)."""
@@ -518,6 +533,22 @@ class History:
         with self._write() as conn, conn.begin():
             res = conn.execute(t.insert().values(**rec))
             return int(res.inserted_primary_key[0])
+
+    def add_service_change(self, *, action: str, store: str, from_version: str | None, to_version: str,
+                           model_id: str | None, os_user: str, note: str) -> int:
+        """Append one record of a version moved into service (promote, rollback); returns its id."""
+        t = self._tables_ready()["service_changes"]
+        rec = {"changed_at": _now_iso(), "action": action, "store": store, "from_version": from_version,
+               "to_version": to_version, "model_id": model_id, "os_user": os_user, "note": note}
+        with self._write() as conn, conn.begin():
+            return int(conn.execute(t.insert().values(**rec)).inserted_primary_key[0])
+
+    def service_changes(self):
+        """Every promote / rollback, oldest first."""
+        t = self._tables_ready()["service_changes"]
+        with self.engine.connect() as conn:
+            rows = conn.execute(sa.select(t).order_by(t.c.id)).mappings().all()
+        return pd.DataFrame(rows, columns=[c.name for c in t.columns])
 
     def audits(self):
 

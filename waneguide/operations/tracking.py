@@ -19,11 +19,12 @@ from pathlib import Path
 from typing import Any, Mapping
 
 import mlflow
+import sqlalchemy as sa
 from mlflow.exceptions import MlflowException
 from mlflow.tracking import MlflowClient
 
 from waneguide.core.errors import InputError
-from waneguide.core.settings import DEFAULT_MODEL_CACHE_DIR, default_tracking_uri, offline_defaults
+from waneguide.core.settings import DEFAULT_MODEL_CACHE_DIR, default_tracking_uri, mask_credentials, offline_defaults
 
 __all__ = ["default_tracking_uri", "init_tracking", "TrackedRun", "flatten_metrics", "experiment_name",
            "artifact_location", "ensure_experiment", "local_model_cache"]
@@ -36,6 +37,25 @@ def experiment_name(family_name: str) -> str:
     return f"waneguide-{family_name}"
 
 
+#: Database schemes MLflow would retry for about 100 s (15 attempts, exponential back-off) when the
+#: server is unreachable; one quick connection of our own answers first.
+_SERVER_DATABASES = ("postgresql", "mysql", "mssql")
+
+
+def _probe_server_database(uri: str) -> None:
+    """Fail in seconds, with the password masked, when a database tracking store cannot be reached."""
+    if uri.split(":", 1)[0].split("+", 1)[0] not in _SERVER_DATABASES:
+        return
+    try:
+        engine = sa.create_engine(uri, connect_args={"connect_timeout": 10})
+        with engine.connect():
+            pass
+        engine.dispose()
+    except Exception as exc:  # noqa: BLE001 - any failure to connect is the user's store setting
+        raise InputError(mask_credentials(f"cannot reach the MLflow tracking store {uri}: {exc}").splitlines()[0]
+                         + " Check --tracking-uri (and that the database server is running).") from None
+
+
 def init_tracking(tracking_uri: str | None = None) -> str:
     """Point MLflow at ``tracking_uri`` (default: :func:`default_tracking_uri`) and create the store once."""
     offline_defaults()
@@ -45,11 +65,12 @@ def init_tracking(tracking_uri: str | None = None) -> str:
         mlflow.set_tracking_uri(uri)
         mlflow.set_registry_uri(uri)
         if uri not in _READY:
+            _probe_server_database(uri)
             try:
                 MlflowClient(uri).search_experiments(max_results=1)  # creates + migrates the schema
             except Exception as exc:  # noqa: BLE001 - turn any store failure into a clear user error
-                raise InputError(f"cannot open the MLflow tracking store {uri!r}: {exc}. "
-                                 f"Check --tracking-uri (default: sqlite file mlflow.db in the working directory)") from None
+                raise InputError(mask_credentials(f"cannot open the MLflow tracking store {uri!r}: {exc}. ")
+                                 + "Check --tracking-uri (default: sqlite file mlflow.db in the working directory)") from None
             _READY.add(uri)
     return uri
 

@@ -6,6 +6,8 @@ into the model store) and then, unless ``track=False``:
 
 * logs the settings, the metrics and the bundle files as one MLflow run of the experiment
   ``waneguide-<family>``;
+* puts the new version in service in the store (``IN_SERVICE``; see
+  :mod:`waneguide.operations.service`), also with ``track=False``;
 * registers the bundle as a new version of the registered model ``waneguide-<family>`` with the
   alias ``in-service`` (:func:`waneguide.operations.registry.register_bundle`).
 
@@ -19,9 +21,11 @@ the artifact location it was created with; a tracking server decides its own.
 """
 from __future__ import annotations
 
-
+from pathlib import Path
 
 from waneguide.core.settings import default_tracking_uri
+from waneguide.features.family import Family, load_family
+from waneguide.models.bundle import set_in_service
 from waneguide.operations.registry import register_bundle
 from waneguide.operations.tracking import TrackedRun, ensure_experiment, experiment_name
 from waneguide.training.pipeline import TrainConfig, TrainResult, train_model
@@ -39,15 +43,17 @@ def train_and_register(family, campaign_dir, out_dir, *, measured_csv=None, trac
     ``model_version`` when tracked.
     """
     cfg = config or TrainConfig()
+    fam = family if isinstance(family, Family) else load_family(family)
+    exp = experiment_name(fam.name)
+    # the tracking store is checked before the work, not after it (a bad URI fails in seconds)
+    uri = ensure_experiment(tracking_uri or default_tracking_uri(), exp) if track else None
     result = train_model(family, campaign_dir, out_dir, measured_csv=measured_csv, random_state=random_state,
                          progress=progress, config=cfg, shift_study=shift_study, shift_cases=shift_cases,
                          n_jobs=n_jobs)
     if not track:
+        set_in_service(Path(result.bundle_path).parent, Path(result.bundle_path).name)
         return result
     bundle, path = result.bundle, result.bundle_path
-    fam = bundle.family
-    exp = experiment_name(fam.name)
-    uri = ensure_experiment(tracking_uri or default_tracking_uri(), exp)
     with TrackedRun(exp, run_name=f"{fam.name} {path.name}", tracking_uri=uri,
                     tags={"family": fam.name, "family_fingerprint": fam.fingerprint,
                           "campaign_fingerprint": bundle.meta.get("campaign_fingerprint", ""),
@@ -58,4 +64,6 @@ def train_and_register(family, campaign_dir, out_dir, *, measured_csv=None, trac
         run.log_artifacts(path, artifact_path="bundle")
         result.model_version = register_bundle(path, fam.name, run_id=run.run_id, tracking_uri=uri)
         result.run_id = run.run_id
+    # registered: the new version is in service in the store too (one rule for every command)
+    set_in_service(Path(path).parent, Path(path).name)
     return result
