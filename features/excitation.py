@@ -33,10 +33,45 @@ Disc response
     gives ``H^2``.
 
 Disc aperture
-    ``A(k) = 2 J1(k a) / (k a)``, the in-plane aperture factor of a uniform circular disc of
-    radius ``a`` for a mode of wavenumber ``k`` (Raghavan and Cesnik 2005, J. Intell. Mater.
-    Syst. Struct. 16, 309, doi:10.1177/1045389X05050106); once per disc, ``A^2`` for a pair.
-    The model evaluates it at the nominal thickness and the reference temperature.
+    ``A(k) = 2 J1(k a) / (k a)``, the aperture factor of a uniform circular disc of radius ``a``
+    for a mode of wavenumber ``k``: the disc's area projected on the path, ``(2 / pi)
+    sqrt(1 - u^2)`` for ``u = x / a`` in ``[-1, 1]``, has the Fourier transform ``2 J1(k a) /
+    (k a)`` (Poisson's integral, Abramowitz and Stegun 1964, eq. 9.1.20). With the
+    radial pin-force model of a bonded disc (Raghavan and Cesnik 2005, Smart Mater. Struct. 14,
+    1448) a disc couples to a mode as ``J1(k a) = (k a / 2) A(k)``: the aperture factor times a
+    coupling to the surface strain, below. Once per disc, ``A^2`` for a pair.
+
+Disc footprint
+    Each disc integrates over the wall under it: the footprint's thickness is the
+    area-weighted mean ``t_fp = sum_j w_j t(x_c + a u_j)`` on the Gauss-Chebyshev nodes of
+    the second kind (weights ``w_j`` proportional to ``sin^2(j pi / (n + 1))``, exact for
+    polynomials of degree ``2 n - 1`` against ``sqrt(1 - u^2)``; :func:`disc_footprint`),
+    the profile being uniform across the width. One disc's factor for mode m is
+
+        F_m(f, t_fp) = A(k_m(f, t_fp) a) sqrt(e_m(f, t_fp) / e_m(f, t_nom))
+
+    with the wavenumber at the footprint's mean thickness and the relative strain
+    excitability ``e_m`` (:func:`strain_excitability`) at that thickness; at the nominal
+    thickness ``F_m = A(k_m)`` (the family's ``s0/a0_excitability`` stay the nominal-thickness
+    values). The model evaluates ``F_m`` at the reference temperature.
+
+Strain excitability
+    A bonded disc drives the plate by in-plane shear at its rim and senses the mean in-plane
+    surface strain under it; by reciprocity both are the mode's surface strain per square
+    root of its power flux. From the residue of the plate's response to a surface shear
+    load (V. Giurgiutiu 2005, J. Intell. Mater. Syst. Struct. 16, 291, eqs. for the PWAS
+    strain field; doi:10.1177/1045389X05050106), with half-thickness h,
+    ``p^2 = w^2 / c_L^2 - k^2``, ``q^2 = w^2 / c_T^2 - k^2``,
+
+        N_S = k q (k^2 + q^2) cos(p h) cos(q h)
+        D_S = (k^2 - q^2)^2 cos(p h) sin(q h) + 4 k^2 p q sin(p h) cos(q h)
+        N_A = k q (k^2 + q^2) sin(p h) sin(q h)
+        D_A = (k^2 - q^2)^2 sin(p h) cos(q h) + 4 k^2 p q cos(p h) sin(q h)
+
+    the surface strain per unit load of a mode is ``N / D'(k)`` and
+    ``e_m = k N_m / D_m'(k)`` is proportional to ``|surface strain|^2 / power flux`` of
+    mode m (thin-plate limits: ``e_S0 ~ t^-1``, ``e_A0 ~ t^-3/2``; a thinner wall couples
+    more strongly to both modes).
 """
 from __future__ import annotations
 
@@ -59,6 +94,9 @@ __all__ = [
     "sampled_spectrum",
     "disc_response",
     "disc_aperture",
+    "disc_footprint",
+    "strain_excitability",
+    "FOOTPRINT_NODES",
     "ExcitationModel",
 ]
 
@@ -70,6 +108,9 @@ GAUSSIAN_SIGMA = 1.0 / 6.0
 TUKEY_TAPER = 0.5
 _COUNT_GUARD = 1e-9  # relative round-off guard of the sample count
 _LOW_F_HZ = 1e-3  # the disc response is evaluated at max(f, this): no division by zero at DC
+#: Nodes of the disc-footprint quadrature (Gauss-Chebyshev, second kind); odd, so one sits at the centre.
+FOOTPRINT_NODES = 15
+_DK_REL = 1e-6  # relative wavenumber step of the central difference D'(k)
 
 
 def _check_window(window: str) -> str:
@@ -176,12 +217,62 @@ def disc_aperture(wavenumber_rad_m, radius_m: float) -> np.ndarray:
     return np.where(small, 1.0, 2.0 * j1(z) / np.where(small, 1.0, z))
 
 
+def disc_footprint(n_nodes: int = FOOTPRINT_NODES) -> tuple[np.ndarray, np.ndarray]:
+    """Nodes ``u`` (in units of the radius, increasing, inside (-1, 1)) and weights (sum 1) of a disc's area on the path.
+
+    Gauss-Chebyshev quadrature of the second kind: ``sum_j w_j g(u_j)`` is the mean of
+    ``g`` over the disc when ``g`` varies along the path only.
+    """
+    n = int(n_nodes)
+    if n < 1:
+        raise InputError(f"n_nodes must be a positive whole number; got {n_nodes!r}.")
+    theta = np.arange(n, 0, -1) * np.pi / (n + 1)
+    w = np.sin(theta) ** 2
+    return np.cos(theta), w / w.sum()
+
+
+def _rl_terms(mode: str, k, w, h, cl, ct):
+    """N and D of the module docstring at wavenumber k, both scaled by exp(-(|Im p| + |Im q|) h)."""
+    p = np.sqrt((w / cl) ** 2 - k * k + 0j)
+    q = np.sqrt((w / ct) ** 2 - k * k + 0j)
+    cp, sp, cq, sq = np.cos(p * h), np.sin(p * h), np.cos(q * h), np.sin(q * h)
+    m2 = (k * k - q * q) ** 2
+    if mode == "S0":
+        return k * q * (k * k + q * q) * cp * cq, m2 * cp * sq + 4 * k * k * p * q * sp * cq
+    return k * q * (k * k + q * q) * sp * sq, m2 * sp * cq + 4 * k * k * p * q * cp * sq
+
+
+def strain_excitability(mode: str, frequency_hz, wavenumber_rad_m, thickness_m, cl_m_s: float,
+                        ct_m_s: float) -> np.ndarray:
+    """Relative strain excitability ``e = k N / D'(k)`` of S0 or A0 (module docstring) [arbitrary units].
+
+    ``wavenumber_rad_m`` must be the mode's Rayleigh-Lamb root at ``(frequency_hz,
+    thickness_m)`` (arrays broadcast together); only ratios at one frequency are meaningful.
+    ``D'`` by a central difference of relative step 1e-6 (truncation and round-off below 1e-9).
+    """
+    if mode not in ("S0", "A0"):
+        raise InputError(f"mode must be 'S0' or 'A0'; got {mode!r}.")
+    k = np.asarray(wavenumber_rad_m, dtype=float)
+    w = 2 * np.pi * np.asarray(frequency_hz, dtype=float)
+    h = 0.5 * np.asarray(thickness_m, dtype=float)
+    p = np.sqrt((w / cl_m_s) ** 2 - k * k + 0j)
+    q = np.sqrt((w / ct_m_s) ** 2 - k * k + 0j)
+    scale = np.exp(-(np.abs(p.imag) + np.abs(q.imag)) * h)  # keeps cosh/sinh finite; cancels in N / D'
+    dk = _DK_REL * k
+    num, _ = _rl_terms(mode, k, w, h, cl_m_s, ct_m_s)
+    d_hi = _rl_terms(mode, k + dk, w, h, cl_m_s, ct_m_s)[1]
+    d_lo = _rl_terms(mode, k - dk, w, h, cl_m_s, ct_m_s)[1]
+    return np.real(k * num * scale / ((d_hi - d_lo) * scale / (2 * dk)))
+
+
 @dataclass(frozen=True)
 class ExcitationModel:
     """The drive burst and the transducer pair of one family (module docstring).
 
     Build it with :meth:`from_family`. ``aperture_radius_m`` is None when the family
-    switches the aperture factor off (``transducer.aperture = "none"``).
+    switches the aperture factor off (``transducer.aperture = "none"``); the footprint
+    (``footprint_radius_m``, half the disc diameter) and the strain excitability at the
+    local thickness apply either way.
     """
 
     centre_frequency_hz: float
@@ -193,11 +284,15 @@ class ExcitationModel:
     aperture_radius_m: float | None
     s0_excitability: float = 1.0
     a0_excitability: float = 1.0
+    footprint_radius_m: float = 0.0
+    cl_m_s: float | None = None
+    ct_m_s: float | None = None
 
     @classmethod
     def from_family(cls, family) -> "ExcitationModel":
         exc, trd = family.excitation, family.transducer
         fc = exc.centre_frequency_hz
+        mat = family.build_material()
         return cls(
             centre_frequency_hz=fc,
             cycles=float(exc.cycles),
@@ -208,6 +303,9 @@ class ExcitationModel:
             aperture_radius_m=family.path.transducer_diameter_mm * 0.5e-3 if trd.aperture == "disc" else None,
             s0_excitability=trd.s0_excitability,
             a0_excitability=trd.a0_excitability,
+            footprint_radius_m=family.path.transducer_diameter_mm * 0.5e-3,
+            cl_m_s=mat.cl_m_s,
+            ct_m_s=mat.ct_m_s,
         )
 
     @property
@@ -232,11 +330,35 @@ class ExcitationModel:
         """``H(f)^2``: transmitting and receiving disc."""
         return disc_response(frequency_hz, self.resonance_hz, self.quality_factor) ** 2
 
-    def pair_aperture(self, wavenumber_rad_m) -> np.ndarray:
-        """``A(k)^2`` for both discs (1 when the aperture factor is off)."""
+    def aperture(self, wavenumber_rad_m) -> np.ndarray:
+        """``A(k)`` of one disc (1 when the aperture factor is off)."""
         if self.aperture_radius_m is None:
             return np.ones(np.shape(wavenumber_rad_m))
-        return disc_aperture(wavenumber_rad_m, self.aperture_radius_m) ** 2
+        return disc_aperture(wavenumber_rad_m, self.aperture_radius_m)
+
+    def pair_aperture(self, wavenumber_rad_m) -> np.ndarray:
+        """``A(k)^2`` for both discs (1 when the aperture factor is off)."""
+        return self.aperture(wavenumber_rad_m) ** 2
+
+    def disc_factor(self, mode: str, frequency_hz, wavenumber_rad_m, thickness_m, nominal_wavenumber_rad_m,
+                    nominal_thickness_m: float) -> np.ndarray:
+        """One disc's factor ``A(k a) sqrt(e(k, t) / e(k_nom, t_nom))`` on a footprint of mean thickness ``thickness_m``.
+
+        ``wavenumber_rad_m`` is the mode's root at ``thickness_m``, ``nominal_wavenumber_rad_m``
+        at ``nominal_thickness_m`` (same frequencies; arrays broadcast). Equals ``A(k)``
+        at the nominal thickness.
+        """
+        if self.cl_m_s is None or self.ct_m_s is None:
+            raise ValueError("disc_factor needs the bulk velocities: build the model with ExcitationModel.from_family.")
+        e = strain_excitability(mode, frequency_hz, wavenumber_rad_m, thickness_m, self.cl_m_s, self.ct_m_s)
+        e0 = strain_excitability(mode, frequency_hz, nominal_wavenumber_rad_m, nominal_thickness_m, self.cl_m_s,
+                                 self.ct_m_s)
+        ratio = e / e0
+        if not np.all(ratio > 0):
+            raise InputError(f"the {mode} strain excitability changes sign between the nominal and a thinned wall "
+                             "in the excitation band (a mode cut-off or root mix-up); check the family's material, "
+                             "thickness and excitation band.")
+        return self.aperture(wavenumber_rad_m) * np.sqrt(ratio)
 
     def excitability(self, mode: str) -> float:
         """Relative amplitude of ``mode`` ("S0" or "A0")."""

@@ -156,7 +156,7 @@ class Campaign:
         return ThinningProfile(x, arrays["thickness_m"][j].astype(float), fam.nominal_thickness_m,
                                fam.path_length_m, patch_count=int(row["patch_count"]),
                                shape="pristine" if row["max_loss_pct"] == 0 else str(row["shape"]),
-                               sides=str(row["sides"]))
+                               sides=str(row["sides"]), transducer_radius_m=fam.path.transducer_diameter_mm * 0.5e-3)
 
     def verify(self) -> None:
         """Check every chunk against its SHA-256 in the manifest (InputError on the first mismatch)."""

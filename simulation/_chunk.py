@@ -23,7 +23,8 @@ def _site(family: Family, fm: ForwardModel, row, seed: int):
     rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(TAG_SITE, int(row.specimen_index))))
     return sample_site(rng, path_length_m=fm.path_length_m, shape=str(row.shape), sides=str(row.sides),
                        n_patches=int(row.n_patches), length_m=float(row.patch_length_mm) * 1e-3,
-                       position_fraction=float(row.position_fraction), position_range=family.domain.position_fraction)
+                       position_fraction=float(row.position_fraction), position_range=family.domain.position_fraction,
+                       at=str(row.site_at))
 
 
 def _col(df: pd.DataFrame, name: str) -> np.ndarray:
@@ -57,7 +58,8 @@ def simulate_chunk(fm: ForwardModel, plan: pd.DataFrame, seed: int) -> dict[str,
     loss = np.stack([shapes[int(j)] for j in spec_idx]) * depth_m[:, None]
     thick = t_nom - loss
     truth = truth_arrays(loss, np.full(fm.x_m.size, fm.segment_m), t_nom,
-                         np.array([counts[int(j)] for j in spec_idx]))
+                         np.array([counts[int(j)] for j in spec_idx]),
+                         footprint_loss_m=t_nom - fm.footprint_thickness(thick))
     del loss
     gain = _db_gain(plan, ("coupling_tx_db", "coupling_rx_db", "coupling_drift_tx_db", "coupling_drift_rx_db"))
     waves = _waveforms(fm, plan, thick, "temperature_c", gain, "jitter_s", "snr_db", TAG_CASE_NOISE,

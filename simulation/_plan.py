@@ -1,4 +1,14 @@
-"""Campaign planning: the Sobol sampling plan of specimens and states (see :mod:`waneguide.simulation.campaign`)."""
+"""Campaign planning: the Sobol sampling plan of specimens and states (see :mod:`waneguide.simulation.campaign`).
+
+Loss under a transducer: :data:`TRANSDUCER_SITE_SHARE` of the specimens (cut from their own
+Sobol coordinate, so the share holds to within the Sobol balance) have their damage site's
+first patch centred under a disc, ``site_at = "transmitter"`` or ``"receiver"``: the centre
+lies within half a patch length of the disc centre, on the path side (``position_fraction``
+is then ``u * length / (2 L)`` from that end, ``u`` the site's position coordinate), so the
+disc centre always lies inside the patch's footprint. The other specimens
+(``site_at = "path"``) place the patch inside the path as before, where a long patch near
+an end can still reach a disc. Pristine states have no loss anywhere.
+"""
 from __future__ import annotations
 
 import math
@@ -12,7 +22,8 @@ from scipy.stats import qmc
 from waneguide.core.errors import InputError
 from waneguide.features.family import Family, load_family
 
-__all__ = ["plan_campaign", "as_family", "check_n_cases", "check_seed", "SPECIMEN_DIMS", "STATE_DIMS"]
+__all__ = ["plan_campaign", "as_family", "check_n_cases", "check_seed", "SPECIMEN_DIMS", "STATE_DIMS",
+           "TRANSDUCER_SITE_SHARE"]
 
 TAG_SPECIMEN_QMC, TAG_STATE_QMC, TAG_PLAN, TAG_SITE, TAG_CASE_NOISE, TAG_BASE_NOISE = range(1, 7)
 
@@ -36,7 +47,10 @@ _STATE_SPANS = {
     "coupling_drift_tx_db": ("coupling_drift_tx", "coupling_drift_db"),
     "coupling_drift_rx_db": ("coupling_drift_rx", "coupling_drift_db"),
 }
-SPECIMEN_DIMS = ("shape", "sides", "n_patches", *(dim for dim, _ in _SPECIMEN_SPANS.values()))
+SPECIMEN_DIMS = ("shape", "sides", "n_patches", *(dim for dim, _ in _SPECIMEN_SPANS.values()), "site_at")
+#: Share of specimens whose damage site is centred under the transmitter and under the receiver
+#: (a choice of this campaign design, no source: enough cases to learn and flag loss under a disc).
+TRANSDUCER_SITE_SHARE = {"transmitter": 0.15, "receiver": 0.15}
 STATE_DIMS = ("pristine", "max_loss", *(dim for dim, _ in _STATE_SPANS.values()))
 
 
@@ -67,6 +81,12 @@ def _pick(u: np.ndarray, options) -> np.ndarray:
     options = list(options)
     idx = np.minimum((u * len(options)).astype(int), len(options) - 1)
     return np.asarray(options, dtype=object)[idx]
+
+
+def _site_at(u: np.ndarray) -> np.ndarray:
+    """``site_at`` from a uniform coordinate: transmitter, receiver, then path (:data:`TRANSDUCER_SITE_SHARE`)."""
+    tx, rx = TRANSDUCER_SITE_SHARE["transmitter"], TRANSDUCER_SITE_SHARE["receiver"]
+    return np.where(u < tx, "transmitter", np.where(u < tx + rx, "receiver", "path")).astype(str)
 
 
 def _spans(coords: dict[str, np.ndarray], dom, table: dict[str, tuple[str, str]]) -> dict[str, np.ndarray]:
@@ -100,6 +120,11 @@ def plan_campaign(family: Family | str | Path, n_cases: int, *, seed: int = 0) -
         **_spans(S, dom, _SPECIMEN_SPANS),
         "baseline_jitter_s": rng.normal(0.0, jitter_sd, n_spec) if jitter_sd > 0 else np.zeros(n_spec),
     })
+    spec["site_at"] = _site_at(S["site_at"])
+    half = 0.5 * np.minimum(spec["patch_length_mm"].to_numpy() * 1e-3, 0.9 * family.path_length_m)
+    from_end = S["position"] * half / family.path_length_m  # centre within half a patch of the disc
+    spec["position_fraction"] = np.select([spec["site_at"] == "transmitter", spec["site_at"] == "receiver"],
+                                          [from_end, 1.0 - from_end], spec["position_fraction"].to_numpy())
     spec["specimen_id"] = [f"S{j:06d}" for j in range(n_spec)]
     pristine = C["pristine"] < dom.pristine_fraction
     lo, hi = dom.max_loss_pct

@@ -4,16 +4,22 @@ For each case the received spectrum, at every frequency bin inside the
 excitation band, is
 
     Y(w) = g * e^{-i w tau_j} * sum_modes sum_paths
-           X(w) H(w)^2 A_m(w)^2 E_m R_p sqrt(L / r_p) e^{-a(w) r_p} e^{-i Phi_mp(w)}
+           X(w) H(w)^2 F_m(w, t_tx) F_m(w, t_rx) E_m R_p sqrt(L / r_p) e^{-a(w) r_p} e^{-i Phi_mp(w)}
          + crosstalk(w) + ringing(w)
 
 X        DFT of the tone burst (``excitation`` section), starting at the trigger
 H        disc resonance ``1 / (1 + i Q (f/f_r - f_r/f))``, transmit and receive
-A_m      disc aperture factor ``2 J1(k_m a) / (k_m a)`` (uniform circular disc of
-         radius a; Raghavan and Cesnik 2005), evaluated at nominal thickness and
-         reference temperature
-         (X, H and A_m: the one excitation model, :mod:`waneguide.features.excitation`)
-E_m      relative mode excitability (``transducer`` section; empirical)
+F_m      one disc's footprint factor on the wall under it,
+         ``A(k_m(w, t) a) sqrt(e_m(w, t) / e_m(w, t_nom))``: the aperture factor
+         ``2 J1(k a) / (k a)`` of a uniform circular disc of radius a (half
+         ``path.transducer_diameter_mm``) at the wavenumber of the footprint's
+         thickness, times the relative strain excitability of the mode there
+         (Rayleigh-Lamb residue, Giurgiutiu 2005); ``t_tx``, ``t_rx``: the
+         area-weighted mean thickness under the transmitter (centred at x = 0) and
+         the receiver (x = L), reference temperature. At nominal thickness
+         ``F_m = A(k_m)``. (X, H, F_m: the one excitation model,
+         :mod:`waneguide.features.excitation`, which states the sources.)
+E_m      relative mode excitability at nominal thickness (``transducer`` section; empirical)
 g        coupling gain of both discs, 10^((c_tx + c_rx)/20)
 tau_j    trigger jitter (moves everything, crosstalk included)
 R_p      1 for the direct path, the sampled reflection coefficient for echoes
@@ -66,9 +72,16 @@ simulation; each item is a candidate correction):
   the mid-plane offset that couples S0 and A0 is ignored;
 - profiles are uniform across the width (see :mod:`waneguide.simulation.profiles`), so the
   edge echoes cross the same profile obliquely;
-- transducers are point-like for geometry (the aperture factor only shapes the
-  spectrum), the excitabilities are constants, the disc resonance is a single
-  second-order system, the same for both discs;
+- each disc sees its footprint through the mean thickness under it (area-weighted over
+  the disc, :data:`waneguide.features.excitation.FOOTPRINT_NODES` Gauss-Chebyshev nodes);
+  the profile is read from the segments, linear between segment centres, and beyond the
+  path ends (the half of each disc outside [0, L]) the wall keeps the thickness of the end
+  segment; a partly thinned footprint is not resolved further (no phase spread across the
+  disc beyond the aperture factor at the mean thickness), the footprint factor ignores
+  temperature (reference-temperature table), the strain excitability is that of a
+  symmetric free plate of the local thickness; the mode excitabilities at nominal
+  thickness are the family's constants; the disc resonance is a single second-order
+  system, the same for both discs and independent of the wall under them;
 - echoes: one reflection each from the two ends and the two edges with one
   frequency-independent coefficient, no mode conversion at the reflection, no
   multiple reverberation, no web-junction reflection; cylindrical spreading;
@@ -95,7 +108,9 @@ import scipy.fft as sfft
 from waneguide.core.errors import InputError
 from waneguide.features.capture import Capture
 from waneguide.features.family import Family
-from waneguide.simulation._tables import MODES, cached_tables, mode_index
+from waneguide.features.excitation import disc_footprint
+from waneguide.simulation._tables import MODES, cached_tables, mode_index, pair_factors
+from waneguide.simulation.profiles import footprint_thickness
 
 __all__ = [
     "FORWARD_MODEL_VERSION",
@@ -106,7 +121,8 @@ __all__ = [
 
 #: Bumped whenever the synthesis changes what it writes (part of the campaign fingerprint).
 #: 2: the drive burst of features.excitation (every sample in [0, T], gaussian sigma T / 6).
-FORWARD_MODEL_VERSION = "2"
+#: 3: the disc footprint: aperture and strain excitability at the mean thickness under each disc.
+FORWARD_MODEL_VERSION = "3"
 
 _PATHS = ("direct", "near_end", "far_end", "edge_1", "edge_2")
 
@@ -126,6 +142,9 @@ class ForwardModel:
     ----------
     n_samples, sample_rate_hz, pretrigger_s, path_length_m, segment_m, x_m
         Record and path geometry; ``x_m`` are the segment centres.
+    footprint_radius_m, footprint_weights
+        Disc radius [m] and the footprint quadrature weights (sum 1; nodes in
+        :func:`waneguide.simulation.profiles.footprint_thickness`).
     """
 
     def __init__(self, family: Family, *, random_state=None, n_thickness: int = 128):
@@ -153,6 +172,8 @@ class ForwardModel:
         self.sec_theta = self.path_lengths_m / L
         self.sec_theta[1:3] = 1.0
         self.full_scale_v = family.full_scale_v
+        self.footprint_radius_m = family.path.transducer_diameter_mm * 0.5e-3
+        self.footprint_weights = disc_footprint()[1]
         self._tables = cached_tables(family, self.n_thickness)
 
     # -- small public helpers --------------------------------------------------------
@@ -190,6 +211,15 @@ class ForwardModel:
         order = np.argsort(x, kind="stable")
         return np.interp(self.x_m, x[order], t[order], left=self.nominal_thickness_m, right=self.nominal_thickness_m)
 
+    def footprint_thickness(self, thickness_m) -> np.ndarray:
+        """Thickness at the footprint nodes of (transmitter, receiver), shape (n, 2, nodes), from segment thickness (n, S)."""
+        return footprint_thickness(self.x_m, np.atleast_2d(thickness_m), self.path_length_m, self.footprint_radius_m)
+
+    def disc_factors(self, thickness_m) -> tuple[np.ndarray, list[np.ndarray]]:
+        """Rows whose footprints are not all nominal, and per mode the pair factor ``F_tx F_rx`` of those rows (r, F)."""
+        return pair_factors(self._tables, self.footprint_thickness(thickness_m), self.footprint_weights,
+                            self.nominal_thickness_m)
+
     def temperature_factors(self, temperature_c) -> tuple[np.ndarray, np.ndarray]:
         """(expansion factor e(T), velocity scale s(T)) per temperature, from the material model."""
         temps = np.atleast_1d(np.asarray(temperature_c, dtype=float))
@@ -224,7 +254,8 @@ class ForwardModel:
         Parameters
         ----------
         thickness_m : array (n, n_segments)
-            Thickness at the segment centres :attr:`x_m`, reference temperature [m].
+            Thickness at the segment centres :attr:`x_m`, reference temperature [m]; the wall
+            under each disc is read from it (:meth:`footprint_thickness`).
         temperature_c : float or array (n,)
         gain : float or array (n,)
             Linear coupling gain of both discs together.
@@ -280,26 +311,36 @@ class ForwardModel:
         a_np = (att_db / (20 * np.log10(np.e)))[:, None] * (f / fc)[None, :]  # Np/m, (n, F)
         n_paths = len(_PATHS) if echoes else 1
         mode_ids = [mode_index(m) for m in modes]
-        phis = {m: ((W @ tb.K[m]) / s[:, None], (Wn @ tb.K[m]) / s[:, None]) for m in mode_ids}
-        Y = np.zeros((n, f.size), complex)
-        z = np.empty((n, f.size), complex)
+        # active paths: (index, log of amp * exp(-a r), mask of rows with amp > 0 or None)
+        active = []
         for p in range(n_paths):
             r = self.path_lengths_m[p]
             amp = np.ones(n) if p == 0 else refl * math.sqrt(self.path_lengths_m[0] / r)
-            if not np.any(amp):
-                continue
-            log_att = -a_np * (r * e)[:, None] + np.log(np.where(amp > 0, amp, 1.0))[:, None]
-            for m in mode_ids:
-                phi_direct, k_nom = phis[m]
+            if np.any(amp):
+                log_att = -a_np * (r * e)[:, None] + np.log(np.where(amp > 0, amp, 1.0))[:, None]
+                active.append((p, log_att, None if p == 0 else (amp > 0)[:, None]))
+        fp_rows, fp_pair = self.disc_factors(thick) if mode_ids else (np.empty(0, np.int64), [])
+        Y = np.zeros((n, f.size), complex)
+        z = np.empty((n, f.size), complex)
+        acc = np.empty((n, f.size), complex)
+        for m in mode_ids:
+            phi_direct, k_nom = (W @ tb.K[m]) / s[:, None], (Wn @ tb.K[m]) / s[:, None]
+            acc[...] = 0.0
+            for p, log_att, mask in active:
                 phi = phi_direct if p == 0 else phi_direct * self.sec_theta[p] + k_nom * self.end_extra_m[p]
                 # amp * exp(-a r) * exp(-i Phi) as one complex exponential
                 z.real = log_att
                 z.imag = -phi
                 np.exp(z, out=z)
-                if p > 0:
-                    z *= (amp > 0)[:, None]
-                z *= tb.source[m][None, :]
-                Y += z
+                if mask is not None:
+                    z *= mask
+                acc += z
+            # the discs are the same for every path: nominal footprints take the pristine source,
+            # the others the bare source times their pair factor F_tx F_rx
+            contrib = acc * tb.source[m][None, :]
+            if fp_rows.size:
+                contrib[fp_rows] = acc[fp_rows] * (tb.source_bare[m][None, :] * fp_pair[m])
+            Y += contrib
         Y *= gain[:, None]
         for level, shape in ((crosstalk_db, tb.crosstalk), (ringing_db, tb.ringing)):
             if level is None:
@@ -405,8 +446,9 @@ def simulate_capture(
     family : Family
     x_m, thickness_m : array
         Thickness [m] at positions [m] from the transmitter; resampled onto the
-        model's segments, nominal outside the given range. A pristine profile
-        (thickness = nominal) gives a baseline.
+        model's segments, nominal outside the given range. The wall under each disc
+        is read from those segments (beyond the path ends it keeps the end segment's
+        thickness). A pristine profile (thickness = nominal) gives a baseline.
     temperature_c : float
         Structure temperature [degC].
     rng : int or Generator

@@ -31,6 +31,17 @@ the midpoints between samples, clipped to [0, L]):
 ``patch_count``                    number of generated patches (0 if pristine)
 ``extent_mm``                      path length where the loss exceeds
                                    :data:`EXTENT_THRESHOLD` of nominal
+``loss_under_tx_mm``,              largest loss under the transmitter's (x = 0) and the
+``loss_under_rx_mm``               receiver's (x = L) footprint, at the footprint nodes
+                                   of :func:`footprint_thickness` (the wall as the
+                                   forward model reads it; 0 if pristine there)
+
+The footprint of a disc of radius ``a`` centred at ``x_c`` is read from the profile by
+linear interpolation at ``x_c + a u_j`` (the Gauss-Chebyshev nodes of
+:func:`waneguide.features.excitation.disc_footprint`); beyond the profile's ends
+(the half of each disc outside the path) the end thickness is kept. So the loss under
+a disc never exceeds ``max_loss_mm``. A profile without a transducer radius
+(``transducer_radius_m = 0``) reports the loss at the path ends.
 
 Only the local thickness matters to the free-plate forward model; the side of
 the loss is recorded but its effect (a mid-plane offset that couples S0 and A0)
@@ -46,6 +57,7 @@ from scipy.ndimage import gaussian_filter1d
 from scipy.special import ndtr
 
 from waneguide.core.errors import InputError
+from waneguide.features.excitation import FOOTPRINT_NODES, disc_footprint
 
 __all__ = [
     "ThinningProfile",
@@ -65,14 +77,20 @@ __all__ = [
     "build_profile",
     "site_shape",
     "truth_arrays",
+    "footprint_thickness",
     "sample_site",
+    "SITE_LOCATIONS",
 ]
 
 #: Loss above this fraction of nominal counts towards ``extent_mm`` (convention, no source).
 EXTENT_THRESHOLD = 0.01
 
 #: Truth columns every profile reports, in campaign-table order.
-TRUTH_COLUMNS = ("max_loss_pct", "max_loss_mm", "mean_loss_pct", "lost_area_mm2", "patch_count", "extent_mm")
+TRUTH_COLUMNS = ("max_loss_pct", "max_loss_mm", "mean_loss_pct", "lost_area_mm2", "patch_count", "extent_mm",
+                 "loss_under_tx_mm", "loss_under_rx_mm")
+
+#: Where the first patch of a damage site is placed (:func:`sample_site`).
+SITE_LOCATIONS = ("path", "transmitter", "receiver")
 
 ShapeName = Literal["flat", "gaussian", "elliptical", "rough"]
 
@@ -84,6 +102,25 @@ def segment_centres_m(path_length_m: float, segment_m: float) -> np.ndarray:
     n = max(1, int(round(path_length_m / segment_m)))
     dx = path_length_m / n
     return (np.arange(n) + 0.5) * dx
+
+
+def footprint_thickness(x_m, thickness_m, path_length_m: float, radius_m: float,
+                        n_nodes: int = FOOTPRINT_NODES) -> np.ndarray:
+    """Thickness at the footprint nodes of the transmitter (x = 0) and the receiver (x = L).
+
+    ``thickness_m`` (..., n) on the increasing positions ``x_m`` (n,); returns (..., 2, n_nodes):
+    linear interpolation, the end values kept beyond the first and last position.
+    """
+    x = np.asarray(x_m, dtype=float)
+    t = np.asarray(thickness_m, dtype=float)
+    u, _ = disc_footprint(n_nodes)
+    xq = np.clip(np.stack([radius_m * u, path_length_m + radius_m * u]), x[0], x[-1])
+    if x.size == 1:
+        return np.broadcast_to(t[..., :1, None], t.shape[:-1] + xq.shape).copy()
+    j = np.clip(np.searchsorted(x, xq, side="right") - 1, 0, x.size - 2)
+    frac = (xq - x[j]) / (x[j + 1] - x[j])
+    lo = t[..., j]
+    return lo + frac * (t[..., j + 1] - lo)  # exact where both neighbours are equal
 
 
 def _segment_lengths(x_m: np.ndarray, path_length_m: float) -> np.ndarray:
@@ -112,6 +149,8 @@ class ThinningProfile:
         ``pristine``, ``flat``, ``gaussian``, ``elliptical``, ``rough`` or ``mixed``.
     sides : str
         ``one`` or ``two``.
+    transducer_radius_m : float
+        Disc radius [m] for the loss-under-transducer truth (0: the path ends).
     """
 
     x_m: np.ndarray
@@ -122,6 +161,7 @@ class ThinningProfile:
     shape: str = "pristine"
     sides: str = "one"
     patches: tuple = field(default=(), repr=False)
+    transducer_radius_m: float = 0.0
 
     def __post_init__(self) -> None:
         x = np.asarray(self.x_m, dtype=float)
@@ -147,8 +187,9 @@ class ThinningProfile:
 
     def truth(self) -> dict[str, float]:
         """The ground-truth columns (:data:`TRUTH_COLUMNS`)."""
+        fp = footprint_thickness(self.x_m, self.thickness_m, self.path_length_m, self.transducer_radius_m)
         t = truth_arrays(self.loss_m[None, :], self.segment_lengths_m, self.nominal_thickness_m,
-                         np.array([self.patch_count]))
+                         np.array([self.patch_count]), footprint_loss_m=(self.nominal_thickness_m - fp)[None])
         return {k: (int(v[0]) if k == "patch_count" else float(v[0])) for k, v in t.items()}
 
     max_loss_mm = property(lambda self: self.truth()["max_loss_mm"], doc="Largest local loss [mm].")
@@ -156,6 +197,10 @@ class ThinningProfile:
     mean_loss_pct = property(lambda self: self.truth()["mean_loss_pct"], doc="Path-averaged loss [% of nominal].")
     lost_area_mm2 = property(lambda self: self.truth()["lost_area_mm2"], doc="Loss integrated along the path [mm^2].")
     extent_mm = property(lambda self: self.truth()["extent_mm"], doc="Length with loss above EXTENT_THRESHOLD [mm].")
+    loss_under_tx_mm = property(lambda self: self.truth()["loss_under_tx_mm"],
+                                doc="Largest loss under the transmitter's footprint [mm].")
+    loss_under_rx_mm = property(lambda self: self.truth()["loss_under_rx_mm"],
+                                doc="Largest loss under the receiver's footprint [mm].")
 
     def resample(self, x_m: np.ndarray) -> np.ndarray:
         """Thickness at other positions (linear interpolation, nominal outside) [m]."""
@@ -164,9 +209,14 @@ class ThinningProfile:
 
 
 def truth_arrays(loss_m: np.ndarray, segment_lengths_m: np.ndarray, nominal_thickness_m: float,
-                 patch_count: np.ndarray) -> dict[str, np.ndarray]:
-    """Ground truth of many profiles at once: ``loss_m`` (n, S) on segments of the given lengths."""
+                 patch_count: np.ndarray, *, footprint_loss_m: np.ndarray) -> dict[str, np.ndarray]:
+    """Ground truth of many profiles at once: ``loss_m`` (n, S) on segments of the given lengths.
+
+    ``footprint_loss_m`` (n, 2, nodes): the loss at the transmitter's and the receiver's
+    footprint nodes (:func:`footprint_thickness`).
+    """
     loss = np.atleast_2d(loss_m)
+    under = np.maximum(np.asarray(footprint_loss_m, dtype=float).max(axis=-1), 0.0) * 1e3  # (n, 2) mm
     w = np.asarray(segment_lengths_m, dtype=float)
     peak = np.maximum(loss.max(axis=1), 0.0)
     area = loss @ w
@@ -178,6 +228,8 @@ def truth_arrays(loss_m: np.ndarray, segment_lengths_m: np.ndarray, nominal_thic
         "lost_area_mm2": area * 1e6,
         "patch_count": np.where(peak > 0, np.asarray(patch_count), 0).astype(np.int64),
         "extent_mm": (above * w).sum(axis=1) * 1e3,
+        "loss_under_tx_mm": under[:, 0],
+        "loss_under_rx_mm": under[:, 1],
     }
 
 
@@ -301,24 +353,26 @@ def site_shape(x_m, patches: Sequence[PatchSpec]) -> np.ndarray:
 
 
 def build_profile(x_m, nominal_thickness_m: float, patches: Sequence[PatchSpec], *, max_loss_pct: float,
-                  path_length_m: float | None = None, shape: np.ndarray | None = None) -> ThinningProfile:
+                  path_length_m: float | None = None, shape: np.ndarray | None = None,
+                  transducer_radius_m: float = 0.0) -> ThinningProfile:
     """Combine patches (max on a side, sum over sides) and scale to ``max_loss_pct`` exactly.
 
     ``shape``: the precomputed :func:`site_shape` of the patches (the campaign reuses it
-    for every state of a specimen).
+    for every state of a specimen). ``transducer_radius_m``: for the loss-under-transducer truth.
     """
     x, L = _check_common(x_m, nominal_thickness_m, path_length_m, max_loss_pct)
     patches = tuple(patches)
     target = nominal_thickness_m * max_loss_pct / 100.0
     if not patches or target == 0.0:
         return ThinningProfile(x, np.full_like(x, nominal_thickness_m), nominal_thickness_m, L,
-                               patch_count=0, shape="pristine", sides="one")
+                               patch_count=0, shape="pristine", sides="one", transducer_radius_m=transducer_radius_m)
     unit = site_shape(x, patches) if shape is None else shape
     thickness = nominal_thickness_m - unit * target
     shapes = {p.shape for p in patches}
     sides = "two" if {p.side for p in patches} == {"top", "bottom"} else "one"
     return ThinningProfile(x, thickness, nominal_thickness_m, L, patch_count=len({p.site for p in patches}),
-                           shape=shapes.pop() if len(shapes) == 1 else "mixed", sides=sides, patches=patches)
+                           shape=shapes.pop() if len(shapes) == 1 else "mixed", sides=sides, patches=patches,
+                           transducer_radius_m=transducer_radius_m)
 
 
 def pristine_profile(x_m, nominal_thickness_m: float, *, path_length_m: float | None = None) -> ThinningProfile:
@@ -383,14 +437,20 @@ def multi_patch_profile(x_m, nominal_thickness_m: float, *, shapes: Iterable[Sha
 
 
 def sample_site(rng: np.random.Generator, *, path_length_m: float, shape: str, sides: str, n_patches: int,
-                length_m: float, position_fraction: float, position_range: tuple[float, float]) -> tuple[PatchSpec, ...]:
+                length_m: float, position_fraction: float, position_range: tuple[float, float],
+                at: str = "path") -> tuple[PatchSpec, ...]:
     """Geometry of one damage site (the patches, unscaled), as the campaign samples it.
 
     The first patch takes the sampled length and position; further patches get
     a length of 0.3-1x that, a uniform position in ``position_range`` and a
     relative depth of 0.3-1. ``shape = "pit"`` picks Gaussian or elliptical
-    with equal odds. Patches are kept inside the path.
+    with equal odds. Patches are kept inside the path, except a first patch
+    placed ``at`` a transducer (:data:`SITE_LOCATIONS`): its centre
+    (``position_fraction`` of the path) is only kept inside [0, L], so it may
+    reach past the disc.
     """
+    if at not in SITE_LOCATIONS:
+        raise InputError(f"at must be one of {', '.join(SITE_LOCATIONS)}; got {at!r}.")
     lo, hi = position_range
     patches: list[PatchSpec] = []
     for j in range(n_patches):
@@ -404,7 +464,8 @@ def sample_site(rng: np.random.Generator, *, path_length_m: float, shape: str, s
             length = length_m * rng.uniform(0.3, 1.0)
             frac, rel = rng.uniform(lo, hi), rng.uniform(0.3, 1.0)
         length = min(length, 0.9 * path_length_m)
-        centre = np.clip(frac * path_length_m, 0.5 * length, path_length_m - 0.5 * length)
+        margin = 0.0 if (j == 0 and at != "path") else 0.5 * length
+        centre = np.clip(frac * path_length_m, margin, path_length_m - margin)
         seed = int(rng.integers(2**62)) if kind == "rough" else None
         p = PatchSpec(kind, float(centre), float(length), float(rel), "top", seed, j)
         patches.extend(_two_sided(p, rng.uniform(0.3, 0.7), rng) if sides == "two" else [p])

@@ -239,6 +239,35 @@ def test_plan_is_space_filling_and_respects_the_domain(family_fb2):
     pd.testing.assert_frame_equal(plan, plan_campaign(family_fb2, 512, seed=3))
 
 
+def test_a_stated_share_of_specimens_has_its_damage_under_a_transducer(family_fb2):
+    # The plan's site_at is cut from its own Sobol coordinate (_plan.TRANSDUCER_SITE_SHARE):
+    # on 512 specimens each share holds to within the Sobol balance (a few points, 0.01).
+    # A transducer site is centred within half a patch of its disc on the path side, so the
+    # disc centre lies inside the patch: every damaged state of such a specimen has loss
+    # under that disc (no more than the deepest loss), seen through the chunk's own truth.
+    from waneguide.simulation._chunk import simulate_chunk
+    from waneguide.simulation._plan import TRANSDUCER_SITE_SHARE
+    from waneguide.simulation.forward import ForwardModel
+
+    plan = plan_campaign(family_fb2, 512 * 4, seed=3)
+    spec = plan.drop_duplicates("specimen_id")
+    L = family_fb2.path_length_m
+    for at, share in TRANSDUCER_SITE_SHARE.items():
+        assert (spec["site_at"] == at).mean() == pytest.approx(share, abs=0.01)
+    half_mm = 0.5 * spec["patch_length_mm"]
+    from_tx = spec["position_fraction"] * L * 1e3
+    assert (from_tx[spec["site_at"] == "transmitter"] <= half_mm[spec["site_at"] == "transmitter"]).all()
+    assert (L * 1e3 - from_tx[spec["site_at"] == "receiver"] <= half_mm[spec["site_at"] == "receiver"]).all()
+    sub = plan.iloc[:256]
+    arrays = simulate_chunk(ForwardModel(family_fb2), sub, 3)
+    damaged = arrays["truth_max_loss_mm"] > 0
+    for at, col in (("transmitter", "truth_loss_under_tx_mm"), ("receiver", "truth_loss_under_rx_mm")):
+        rows = damaged & (sub["site_at"].to_numpy() == at)
+        assert rows.sum() >= 4
+        assert (arrays[col][rows] > 0).all()
+        assert (arrays[col] <= arrays["truth_max_loss_mm"] + 1e-12).all()
+
+
 def test_export_writes_readable_captures_with_baselines(reference, tmp_path):
     out = tmp_path / "files"
     index = export_campaign_captures(reference, out, cases=[0, 1, 5, "C0000009"], fmt="csv")

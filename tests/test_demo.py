@@ -85,10 +85,13 @@ def test_growing_patch_trends_upward_and_sound_paths_stay_low(demo):
     j = j[j["status"] == "scored"]
     for pid in demo["scenario"].growth:
         g = j[j["path_id"] == pid].sort_values("week")
-        rho = stats.spearmanr(g["week"], g["max_loss_pct"]).statistic
+        # the trend is checked on the path-averaged loss, the quantity one pitch-catch path determines
+        # (README "Models"; a deep short pit and a shallow long patch give the same arrival shift, so
+        # the maximum of a small pit is only partly observable and its weekly estimate may stall).
+        rho = stats.spearmanr(g["week"], g["mean_loss_pct"]).statistic
         # 12 weekly points of a monotone truth: rho >= 0.7 is significant at 1 % one-sided for n = 12
         # (critical value about 0.67, from memory of the Spearman tables); the truth itself has rho = 1
-        assert rho >= 0.7, (pid, g[["week", "true_max_loss_pct", "max_loss_pct"]])
+        assert rho >= 0.7, (pid, g[["week", "true_mean_loss_pct", "mean_loss_pct"]])
         # end of season vs start: the estimate rose by at least half the true growth (regression value
         # of this code: the maximum is only partly observable from one path)
         grow = g["true_max_loss_pct"].iloc[-1] - g["true_max_loss_pct"].iloc[0]

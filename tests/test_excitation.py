@@ -2,11 +2,13 @@
 
 References: exact rational arithmetic (sample counts), scipy.signal.windows (window shapes),
 F. J. Harris, Proc. IEEE 66(1), 51, 1978 (Hann main lobe), the Fourier transform of a
-Gaussian, second-order resonator algebra, and the Bessel-function tables (first zero of J1,
-Abramowitz and Stegun 1964, table 9.5).
+Gaussian, second-order resonator algebra, the Bessel-function tables (first zero of J1,
+Abramowitz and Stegun 1964, table 9.5) and Poisson's integral (eq. 9.1.20), Rayleigh-Lamb
+mode shapes with their power flux (Auld 1990) and classical plate theory (Graff 1975).
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 from fractions import Fraction
 
@@ -16,12 +18,15 @@ from scipy.optimize import brentq
 from scipy.signal import windows
 
 from waneguide.core.errors import InputError
+from waneguide.features.dispersion import fundamental_dispersion
 from waneguide.features.excitation import (
     ExcitationModel,
     burst_n_samples,
     disc_aperture,
+    disc_footprint,
     disc_response,
     sampled_spectrum,
+    strain_excitability,
     tone_burst,
 )
 
@@ -159,3 +164,113 @@ def test_bad_window_is_refused_naming_the_field():
     with pytest.raises(InputError, match="window must be one of hann, gaussian, tukey, rect; got 'kaiser'.*"
                                          "excitation.window"):
         tone_burst(150e3, 5, FS, window="kaiser")
+
+
+# -- disc footprint and strain excitability -------------------------------------------------
+@pytest.mark.parametrize("z", [0.0, 1e-4, 0.5, 2.0, 3.8317059702, 6.0])
+def test_footprint_quadrature_of_the_disc_is_the_aperture_factor(z):
+    # Poisson's integral (Abramowitz and Stegun 1964, eq. 9.1.20) with nu = 1:
+    #   int_{-1}^{1} sqrt(1 - u^2) exp(i z u) du = pi J1(z) / z,
+    # so the disc's area projected on the path, normalised, transforms to 2 J1(z) / z, the
+    # aperture factor, which is 1 at z = 0 (a -> 0). The 15-node Gauss-Chebyshev rule is
+    # exact to degree 29; the omitted Taylor term z^30 / 30! is 8e-10 at z = 6 (bound 1e-8).
+    u, w = disc_footprint()
+    assert w.sum() == pytest.approx(1.0, abs=1e-15) and np.all(np.diff(u) > 0) and np.all(np.abs(u) < 1)
+    np.testing.assert_allclose(u, -u[::-1], atol=1e-15)  # symmetric about the disc centre
+    a = 3.5e-3
+    quad = np.sum(w * np.exp(1j * z * u))
+    assert quad.real == pytest.approx(float(disc_aperture(z / a, a)), abs=1e-8)
+    assert abs(quad.imag) < 1e-12
+    if z == 0.0:
+        assert float(disc_aperture(0.0, a)) == 1.0
+
+
+def _normal_mode_strain_per_power(mode, k, w, h, cl, ct, rho, nz=4001):
+    """|surface strain|^2 / power flux of a Rayleigh-Lamb mode from its mode shape.
+
+    Potentials phi = A cos(pz), psi = B sin(qz) (symmetric) or A sin(pz), B cos(qz)
+    (antisymmetric), u_x = d phi/dx + d psi/dz, u_z = d phi/dz - d psi/dx (Rose 1999, ch. 8);
+    (A, B) the null vector of the traction-free conditions at z = h; power flux
+    P = 1/2 Re int -(s_xx v_x* + s_xz v_z*) dz (Auld 1990, vol. 2, ch. 10).
+    """
+    from scipy.integrate import simpson
+
+    mu = rho * ct**2
+    lam = rho * cl**2 - 2 * mu
+    p = np.sqrt((w / cl) ** 2 - k**2 + 0j)
+    q = np.sqrt((w / ct) ** 2 - k**2 + 0j)
+    z = np.linspace(-h, h, nz)
+    if mode == "S0":
+        f0, f1, f2 = np.cos(p * z), -p * np.sin(p * z), -p * p * np.cos(p * z)
+        g0, g1, g2 = np.sin(q * z), q * np.cos(q * z), -q * q * np.sin(q * z)
+    else:
+        f0, f1, f2 = np.sin(p * z), p * np.cos(p * z), -p * p * np.sin(p * z)
+        g0, g1, g2 = np.cos(q * z), -q * np.sin(q * z), -q * q * np.cos(q * z)
+    ux = np.stack([1j * k * f0, g1])
+    uz = np.stack([f1, -1j * k * g0])
+    div = 1j * k * ux + np.stack([f2, -1j * k * g1])
+    szz = lam * div + 2 * mu * np.stack([f2, -1j * k * g1])
+    sxz = mu * (np.stack([1j * k * f1, g2]) + 1j * k * uz)
+    sxx = lam * div + 2 * mu * 1j * k * ux
+    M = np.array([[szz[0, -1], szz[1, -1]], [sxz[0, -1], sxz[1, -1]]])
+    c = np.linalg.svd(M)[2][-1].conj()
+    comb = lambda f: c[0] * f[0] + c[1] * f[1]  # noqa: E731
+    Ux, Uz, Sxx, Sxz = comb(ux), comb(uz), comb(sxx), comb(sxz)
+    P = 0.5 * np.real(simpson(-(Sxx * np.conj(-1j * w * Ux) + Sxz * np.conj(-1j * w * Uz)), x=z))
+    return abs(1j * k * Ux[-1]) ** 2 / abs(P)
+
+
+@pytest.mark.parametrize("mode", ["S0", "A0"])
+def test_strain_excitability_is_the_power_normalised_surface_strain(family_fb2, mode):
+    # By reciprocity a bonded disc excites and senses a mode through its surface strain per
+    # square root of power (normal-mode theory, Auld 1990 vol. 2 ch. 10): e(t) / e(t0) must
+    # equal the ratio of |surface strain|^2 / power flux computed from the Rayleigh-Lamb mode
+    # shapes (an independent route: mode shapes and a Poynting integral, no residue). Wave-
+    # numbers from the dispersion engine. 1e-6: Simpson's rule on 4001 points and the
+    # central difference of D' (observed 1e-10 for S0, 2e-7 for A0).
+    mat = family_fb2.build_material()
+    t0 = family_fb2.nominal_thickness_m
+    ts = t0 * np.array([1.0, 0.3, 0.6, 0.85, 1.08])
+    f = np.array([60e3, 150e3, 260e3])
+    mi = ("S0", "A0").index(mode)
+    k = fundamental_dispersion(mat, ts, f).wavenumber_rad_m[:, mi, :]
+    e = strain_excitability(mode, f[None, :], k, ts[:, None], mat.cl_m_s, mat.ct_m_s)
+    ref = np.array([[_normal_mode_strain_per_power(mode, k[i, j], 2 * np.pi * f[j], ts[i] / 2, mat.cl_m_s,
+                                                   mat.ct_m_s, mat.density_kg_m3) for j in range(f.size)]
+                    for i in range(ts.size)])
+    np.testing.assert_allclose(e / e[0], ref / ref[0], rtol=1e-6)
+
+
+def test_strain_excitability_thin_plate_limits(family_fb2):
+    # Thin-plate limits (classical plate theory, Graff 1975 ch. 4 and 8.1): S0 is a membrane
+    # wave with uniform in-plane motion, power ~ t, so |strain|^2 / power ~ t^-1; A0 is a
+    # flexural wave with surface strain ~ t k^2 w, k ~ t^-1/2, power ~ t w^2 / k, so
+    # |strain|^2 / power ~ t^-3/2. At 5 kHz and 1-2 mm (f d <= 10 kHz mm) the Rayleigh-Lamb
+    # correction is O((k h)^2) ~ 1e-3 (tolerance 1 % on the exponent; observed 0.1 %).
+    mat = family_fb2.build_material()
+    ts = np.array([1e-3, 2e-3])
+    f = 5e3
+    for mode, expo in (("S0", -1.0), ("A0", -1.5)):
+        k = fundamental_dispersion(mat, ts, f).wavenumber_rad_m[:, ("S0", "A0").index(mode), 0]
+        e = strain_excitability(mode, f, k, ts, mat.cl_m_s, mat.ct_m_s)
+        assert np.log(e[1] / e[0]) / np.log(2.0) == pytest.approx(expo, rel=0.01)
+
+
+def test_disc_factor_is_the_aperture_at_nominal_and_grows_with_thinning_without_it(family_fb2):
+    # At the nominal thickness the factor is A(k) (the family's excitabilities hold there); with
+    # the aperture off it is sqrt(e(t) / e(t0)) > 1 on a thinner wall (thin-plate limits above:
+    # a thinner wall couples more strongly). Identities of the model's definition: round-off.
+    em = ExcitationModel.from_family(family_fb2)
+    mat = family_fb2.build_material()
+    t0 = family_fb2.nominal_thickness_m
+    f = np.linspace(80e3, 240e3, 9)
+    cur = fundamental_dispersion(mat, [t0, 0.7 * t0], f)
+    for mi, mode in enumerate(("S0", "A0")):
+        k0, k1 = cur.wavenumber_rad_m[0, mi], cur.wavenumber_rad_m[1, mi]
+        np.testing.assert_allclose(em.disc_factor(mode, f, k0, t0, k0, t0), disc_aperture(k0, em.aperture_radius_m),
+                                   rtol=1e-12)
+        bare = dataclasses.replace(em, aperture_radius_m=None)
+        ratio = strain_excitability(mode, f, k1, 0.7 * t0, mat.cl_m_s, mat.ct_m_s) / strain_excitability(
+            mode, f, k0, t0, mat.cl_m_s, mat.ct_m_s)
+        np.testing.assert_allclose(bare.disc_factor(mode, f, k1, 0.7 * t0, k0, t0), np.sqrt(ratio), rtol=1e-12)
+        assert np.all(ratio > 1.0)

@@ -12,11 +12,12 @@ import copy
 import numpy as np
 import pytest
 from scipy.signal import hilbert
+from scipy.special import j1
 
 from waneguide.features.capture import Capture
 from waneguide.features.dispersion import fundamental_dispersion
 from waneguide.features.family import family_from_mapping
-from waneguide.features.excitation import tone_burst
+from waneguide.features.excitation import strain_excitability, tone_burst
 from waneguide.simulation.forward import ForwardModel, simulate_capture
 
 # everything that is not propagation switched off
@@ -90,15 +91,33 @@ def test_energy_centroid_delay_is_the_energy_weighted_group_delay(model, mode):
     assert centroid(rx) - centroid(src) == pytest.approx(expected, rel=1e-4)
 
 
+def _interp_bound(values, h):
+    """(du^2 / 8) |d2 v / du2| from values at u - h, u, u + h: the error bound of linear interpolation."""
+    return np.abs(values[2] - 2 * values[1] + values[0]) / h**2 / 8
+
+
+def _phase_tolerance(fm, mode, fq, t1, ell):
+    """Bound of the table's phase error over a thinned length ell: linear interpolation in u = ln t
+    of k at t0 and at t1, (du^2 / 8) |d2k/du2| ell, d2k/du2 from the engine by central differences."""
+    mi = ("S0", "A0").index(mode)
+    h = 1e-2
+    t0 = fm.nominal_thickness_m
+    k = fundamental_dispersion(fm.material, np.outer([t0, t1], np.exp([-h, 0.0, h])).ravel(),
+                               fq).wavenumber_rad_m[:, mi]
+    du2 = fm._tables.dln ** 2
+    return du2 * (_interp_bound(k[0:3], h) + _interp_bound(k[3:6], h)) * ell + 1e-6
+
+
 @pytest.mark.parametrize("mode", ["S0", "A0"])
 @pytest.mark.parametrize("thinned_length_m", [None, 0.1])
 def test_thinning_shifts_phase_by_the_integral_of_the_wavenumber_change(model, mode, thinned_length_m):
     # Phase of exp(-i int k dx): thinning a stretch of length l from t0 to t1 changes the
     # phase at every frequency by -l (k(t1) - k(t0)) (WKB phase integral, Rose 1999 sec. 8;
     # it is the model's stated approximation). Here l is the whole path or a 100 mm patch and
-    # t1 = 0.83 t0, a thickness between grid nodes. Tolerance per frequency: the error bound
-    # of linear interpolation in u = ln t, (du^2 / 8) |d2k/du2| at t0 and at t1, times l,
-    # with d2k/du2 from the engine by central differences.
+    # t1 = 0.83 t0, a thickness between grid nodes (nominal is a node). Tolerance per
+    # frequency: the error bound of linear interpolation in u = ln t (_phase_tolerance). The
+    # disc footprint factors are real and positive in pairs, so they do not move the phase
+    # of the uniformly thinned plate.
     fm = model
     fs, mi = fm.sample_rate_hz, ("S0", "A0").index(mode)
     t0 = fm.nominal_thickness_m
@@ -120,13 +139,9 @@ def test_thinning_shifts_phase_by_the_integral_of_the_wavenumber_change(model, m
     # the -26 dB band: nearer the -60 dB band edges the record's DTFT also sees the
     # truncation of the band-limited synthesis (a -60 dB effect, not the phase under test)
     keep = np.abs(X0) > 0.05 * np.abs(X0).max()
-    h = 1e-2
-    k = fundamental_dispersion(fm.material, [t0, t1, t0 * np.exp(h), t0 * np.exp(-h), t1 * np.exp(h), t1 * np.exp(-h)],
-                               fq).wavenumber_rad_m[:, mi]
+    k = fundamental_dispersion(fm.material, [t0, t1], fq).wavenumber_rad_m[:, mi]
     expected = -ell * (k[1] - k[0])
-    d2 = lambda c, p, m: np.abs(k[p] - 2 * k[c] + k[m]) / h**2  # noqa: E731
-    du = fm._tables.dln
-    tol = du**2 / 8 * (d2(0, 2, 3) + d2(1, 4, 5)) * ell + 1e-6
+    tol = _phase_tolerance(fm, mode, fq, t1, ell)
     err = np.angle(np.exp(1j * (np.angle(X1 / X0) - expected)))
     assert np.all(np.abs(err[keep]) <= tol[keep]), np.max(np.abs(err[keep]) / tol[keep])
     assert keep.sum() > 20
@@ -332,3 +347,115 @@ def test_adc_full_scale_clips_and_counts_are_quantised(family_fb2):
     steps = y / 1e-3
     np.testing.assert_allclose(steps, np.round(steps), atol=1e-9)
     assert np.unique(np.round(steps)).size > 50
+
+
+# -- the disc footprint -------------------------------------------------------------------
+def _band_ratio(fm, x0, x1, step=2):
+    """DTFT ratio X1 / X0 of two records at the synthesised bins, and the -26 dB band mask."""
+    fq = fm.frequency_hz[::step]
+    E = np.exp(-2j * np.pi * np.outer(np.arange(x0.size) / fm.sample_rate_hz, fq))
+    X0, X1 = x0 @ E, x1 @ E
+    return fq, X1 / X0, np.abs(X0) > 0.05 * np.abs(X0).max()
+
+
+def _engine_disc_factor(fm, mode, fq, t):
+    """One disc's factor at a footprint of thickness t, from the engine: 2 J1(k a) / (k a) sqrt(e(t) / e(t0))."""
+    mi = ("S0", "A0").index(mode)
+    t0 = fm.nominal_thickness_m
+    k = fundamental_dispersion(fm.material, [t0, t], fq).wavenumber_rad_m[:, mi]
+    a = fm.family.path.transducer_diameter_mm * 0.5e-3
+    z = k * a
+    aperture = 2 * j1(z) / z
+    e = strain_excitability(mode, fq[None, :], k, np.array([t0, t])[:, None], fm.material.cl_m_s, fm.material.ct_m_s)
+    return aperture[1] * np.sqrt(e[1] / e[0]) / aperture[0], k
+
+
+def _disc_tolerance(fm, mode, fq, t1):
+    """Relative bound of one disc factor's table error at t1: linear interpolation in ln t (+ 1e-6 round-off)."""
+    h = 1e-2
+    F = np.stack([_engine_disc_factor(fm, mode, fq, t1 * np.exp(d))[0] for d in (-h, 0.0, h)])
+    return fm._tables.dln ** 2 * _interp_bound(F, h) / np.abs(F[1]) + 1e-6
+
+
+@pytest.mark.parametrize("mode", ["S0", "A0"])
+def test_uniform_thinning_equals_the_point_model_at_that_thickness(model, mode):
+    # Consistency limit: a plate thinned everywhere (under both discs too) is a uniform plate
+    # of that thickness, so X1 / X0 = (F(t1) / F(t0))^2 exp(-i (k1 - k0) L), with F the point
+    # model's disc factor at that thickness (aperture 2 J1(ka)/(ka) from scipy, wavenumbers
+    # from the engine, strain excitability as checked in test_excitation). t1 = 0.8 t0 lies
+    # between grid nodes. Tolerances per frequency: the bounds of linear interpolation in ln t
+    # of the disc table (twice: two discs) and of the wavenumber table over L.
+    fm = model
+    t0 = fm.nominal_thickness_m
+    t1 = 0.8 * t0
+    T = fm.material.reference_temperature_c
+    x0 = fm.simulate(_flat(fm), T, modes=(mode,), **OFF)
+    x1 = fm.simulate(_flat(fm, t1), T, modes=(mode,), **OFF)
+    fq, ratio, keep = _band_ratio(fm, x0, x1)
+    F, k = _engine_disc_factor(fm, mode, fq, t1)
+    expected = F**2 * np.exp(-1j * (k[1] - k[0]) * fm.path_length_m)
+    amp_err = np.abs(np.abs(ratio) / np.abs(expected) - 1)
+    assert np.all(amp_err[keep] <= 2 * _disc_tolerance(fm, mode, fq, t1)[keep])
+    phase_err = np.abs(np.angle(ratio / expected))
+    assert np.all(phase_err[keep] <= _phase_tolerance(fm, mode, fq, t1, fm.path_length_m)[keep])
+    assert np.max(np.abs(np.abs(F[keep]) - 1)) > 0.02  # the footprint does change the pair factor
+
+
+@pytest.mark.parametrize("mode", ["S0", "A0"])
+@pytest.mark.parametrize("diameter_mm", [None, 0.01])
+def test_flat_patch_under_the_receiver_changes_the_amplitude_as_local_excitability_predicts(
+        family_fb2, family_st3, mode, diameter_mm):
+    # A flat 25 % patch over the last 12 mm of the path covers the whole receiver footprint:
+    # X1 / X0 = F(t1) / F(t0) exp(-i (k1 - k0) l), l the thinned length, F the disc factor at
+    # the local thickness from the engine (Rayleigh-Lamb wavenumber and strain excitability).
+    # The received amplitude must move the way F predicts at every frequency where F differs
+    # from 1 by more than 1 % (for the 7 mm discs A0 gains excitability but loses aperture as
+    # k a grows, so the sign changes across the band), and agree within the interpolation
+    # bounds of the disc and wavenumber tables. With a 0.01 mm disc (a -> 0, aperture -> 1) the
+    # factor is the excitability alone: a thinner wall under the receiver raises the received
+    # amplitude of both modes (thin-plate limits in test_excitation). The transmitter
+    # side is pristine; the point model of version 2 fails this test (|X1 / X0| = 1).
+    for fam in (family_fb2, family_st3):
+        if diameter_mm is not None:
+            fam = _variant(fam, path__transducer_diameter_mm=diameter_mm)
+        fm = ForwardModel(fam)
+        t0 = fm.nominal_thickness_m
+        t1 = 0.75 * t0
+        inside = fm.x_m > fm.path_length_m - 0.012
+        prof = np.where(inside, t1, t0)
+        T = fm.material.reference_temperature_c
+        x0 = fm.simulate(_flat(fm), T, modes=(mode,), **OFF)
+        x1 = fm.simulate(prof, T, modes=(mode,), **OFF)
+        fq, ratio, keep = _band_ratio(fm, x0, x1)
+        F, k = _engine_disc_factor(fm, mode, fq, t1)
+        ell = inside.sum() * fm.segment_m
+        expected = F * np.exp(-1j * (k[1] - k[0]) * ell)
+        moved = keep & (np.abs(np.abs(F) - 1) > 0.01)
+        assert moved.sum() > 10
+        np.testing.assert_array_equal(np.sign(np.abs(ratio[moved]) - 1), np.sign(np.abs(F[moved]) - 1))
+        amp_err = np.abs(np.abs(ratio) / np.abs(expected) - 1)
+        assert np.all(amp_err[keep] <= _disc_tolerance(fm, mode, fq, t1)[keep])
+        phase_err = np.abs(np.angle(ratio / expected))
+        assert np.all(phase_err[keep] <= _phase_tolerance(fm, mode, fq, t1, ell)[keep])
+        if diameter_mm is not None:
+            assert np.all(np.abs(ratio[keep]) > 1.0)
+
+
+@pytest.mark.parametrize("mode", ["S0", "A0"])
+def test_patch_away_from_the_discs_changes_only_the_path_phase(model, mode):
+    # A 100 mm patch in the middle of the path leaves both footprints nominal: the discs' factors
+    # are the nominal ones exactly, so the received spectrum differs from the pristine one by
+    # the unit-modulus path phase only (|X1 / X0| = 1 to round-off of the DTFT sums, 1e-9; the
+    # phase itself is checked against Rayleigh-Lamb in
+    # test_thinning_shifts_phase_by_the_integral_of_the_wavenumber_change).
+    fm = model
+    t0 = fm.nominal_thickness_m
+    inside = np.abs(fm.x_m - fm.path_length_m / 2) < 0.05
+    prof = np.where(inside, 0.7 * t0, t0)
+    assert fm.disc_factors(prof[None, :])[0].size == 0
+    np.testing.assert_array_equal(fm.footprint_thickness(prof), t0)
+    T = fm.material.reference_temperature_c
+    x0 = fm.simulate(_flat(fm), T, modes=(mode,), **OFF)
+    x1 = fm.simulate(prof, T, modes=(mode,), **OFF)
+    _, ratio, keep = _band_ratio(fm, x0, x1)
+    np.testing.assert_allclose(np.abs(ratio[keep]), 1.0, rtol=0, atol=1e-9)

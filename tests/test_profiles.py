@@ -9,12 +9,15 @@ from scipy import stats
 
 from waneguide.simulation.profiles import (
     EXTENT_THRESHOLD,
+    PatchSpec,
     ThinningProfile,
     flat_patch_profile,
     multi_patch_profile,
+    build_profile,
     pit_profile,
     pristine_profile,
     rough_profile,
+    sample_site,
     segment_centres_m,
 )
 
@@ -26,7 +29,7 @@ X = segment_centres_m(L, 0.1e-3)  # 0.1 mm grid: midpoint-rule error far below t
 def test_pristine_truth_is_zero():
     p = pristine_profile(X, T0, path_length_m=L)
     assert p.truth() == {"max_loss_pct": 0.0, "max_loss_mm": 0.0, "mean_loss_pct": 0.0, "lost_area_mm2": 0.0,
-                         "patch_count": 0, "extent_mm": 0.0}
+                         "patch_count": 0, "extent_mm": 0.0, "loss_under_tx_mm": 0.0, "loss_under_rx_mm": 0.0}
 
 
 def test_flat_patch_truth_matches_closed_form():
@@ -126,3 +129,45 @@ def test_mean_loss_uses_segment_lengths_on_an_uneven_grid():
     assert p.mean_loss_pct == pytest.approx(100 * 0.5 * 0.1 / 0.3)
     assert p.lost_area_mm2 == pytest.approx(1.0 * 100.0)
     assert stats.describe(p.segment_lengths_m).nobs == 3
+
+
+def test_loss_under_each_transducer_is_read_on_its_footprint():
+    # Flat 40 mm patch centred on the transmitter (x = 0): its flat bottom (|x| <= 10 mm) covers
+    # the whole 3.5 mm disc, so the loss under it is the full depth (exact); the receiver at
+    # L = 300 mm is 280 mm from the patch: no loss. A Gaussian pit centred 8 mm before the
+    # receiver with sigma = 5 mm: the deepest footprint point is the node nearest the pit, the
+    # outermost Gauss-Chebyshev node at a cos(pi / 16) = 3.43 mm from the disc centre, with the
+    # loss d exp(-(8 - 3.43)^2 / 50) (Gaussian, closed form; 1e-3 relative covers the linear
+    # interpolation on the 0.1 mm grid). With radius 0 the footprint is the disc centre, read
+    # as the profile's end sample (end value held), 0.05 mm before L.
+    a = 3.5e-3
+    p = build_profile(X, T0, [PatchSpec("flat", 0.0, 0.040)], max_loss_pct=30.0, path_length_m=L,
+                      transducer_radius_m=a)
+    assert p.loss_under_tx_mm == pytest.approx(0.6, rel=1e-12)
+    assert p.loss_under_rx_mm == 0.0
+    g = build_profile(X, T0, [PatchSpec("gaussian", L - 0.008, 0.020)], max_loss_pct=30.0, path_length_m=L,
+                      transducer_radius_m=a)
+    u_outer = np.cos(np.pi / 16)  # outermost Gauss-Chebyshev node of 15, in units of the radius
+    assert g.loss_under_rx_mm == pytest.approx(0.6 * math.exp(-((8.0 - 3.5 * u_outer) ** 2) / 50.0), rel=1e-3)
+    g0 = build_profile(X, T0, [PatchSpec("gaussian", L - 0.008, 0.020)], max_loss_pct=30.0, path_length_m=L)
+    # the profile is scaled to its deepest sample, 0.05 mm off the pit centre: d / exp(-0.05^2 / 50)
+    assert g0.loss_under_rx_mm == pytest.approx(0.6 * math.exp(-(7.95**2 - 0.05**2) / 50.0), rel=1e-9)
+    for q in (p, g, g0):
+        assert max(q.loss_under_tx_mm, q.loss_under_rx_mm) <= q.max_loss_mm + 1e-12
+
+
+@pytest.mark.parametrize("at", ["transmitter", "receiver"])
+def test_a_site_at_a_transducer_may_reach_past_the_disc(at):
+    # The first patch of a site placed at a transducer keeps its centre (a tenth of a patch from
+    # the path end here) instead of being pulled a half-length into the path; a path site is.
+    rng = np.random.default_rng(0)
+    frac = 0.005 / L if at == "transmitter" else 1 - 0.005 / L
+    site = sample_site(rng, path_length_m=L, shape="flat", sides="one", n_patches=1, length_m=0.05,
+                       position_fraction=frac, position_range=(0.1, 0.9), at=at)
+    assert site[0].centre_m == pytest.approx(frac * L, abs=1e-15)
+    path = sample_site(np.random.default_rng(0), path_length_m=L, shape="flat", sides="one", n_patches=1,
+                       length_m=0.05, position_fraction=frac, position_range=(0.1, 0.9))
+    assert path[0].centre_m == pytest.approx(0.025 if at == "transmitter" else L - 0.025, abs=1e-15)
+    with pytest.raises(ValueError, match="at must be one of path, transmitter, receiver"):
+        sample_site(rng, path_length_m=L, shape="flat", sides="one", n_patches=1, length_m=0.05,
+                    position_fraction=0.5, position_range=(0.1, 0.9), at="web")
