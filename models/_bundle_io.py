@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 import skops.io as sio
 
-from waneguide.core.atomic import file_sha256
+from waneguide.core.atomic import file_sha256, make_private_dir_shareable
 from waneguide.core.errors import InputError, MissingInputError
 from waneguide.features.family import load_family
 from waneguide.models._target import TargetModel, TrainingDomain
@@ -142,7 +142,7 @@ def write_bundle_dir(bundle, path: str | os.PathLike) -> Path:
         raise InputError(f"bundle directory {str(path)!r} already exists and is not empty; bundles are never "
                          "overwritten: choose a new directory (or save_version(store) for the next vNNN)")
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
+    tmp = make_private_dir_shareable(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
     try:
         _write_files(bundle, tmp)
         # rename onto the (claimed, empty) target: POSIX rename replaces an empty directory

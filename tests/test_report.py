@@ -11,6 +11,7 @@ within half a unit of the last digit, abs 0.005.
 from __future__ import annotations
 
 import base64
+import html
 import io
 import re
 from html.parser import HTMLParser
@@ -217,3 +218,14 @@ def test_figures_draw_infinite_bands_without_error():
     fig2 = _scatter_figure(matched, 0.9)
     lo2, hi2 = fig2.axes[0].get_ylim()
     assert np.isfinite(lo2) and np.isfinite(hi2) and lo2 <= 5.0 and hi2 >= 6.0   # the estimates are in view
+
+
+def test_a_path_id_with_mathtext_markup_is_plain_text(tmp_path):
+    # issue 11: a path_id of `$\undefinedmacro{x}$` killed the report through matplotlib's mathtext
+    ex = build_example(tmp_path)
+    odd = ex["scores"].copy()
+    odd["path_id"] = odd["path_id"].replace({"P02": r"$\undefinedmacro{x}$"})
+    out = write_report(tmp_path / "odd.html", scores=odd, model=MODEL)
+    text = out.read_text(encoding="utf-8")
+    assert r"$\undefinedmacro{x}$" in html.unescape(text)
+    assert len(parse_report(text).images) == 3

@@ -14,7 +14,10 @@ from typing import Iterator
 
 from .errors import InputError
 
-__all__ = ["atomic_path", "atomic_write_bytes", "atomic_write_text", "check_output_dir", "check_output_path", "file_sha256"]
+__all__ = [
+    "atomic_path", "atomic_write_bytes", "atomic_write_text", "check_output_dir", "check_output_path", "file_sha256",
+    "current_umask", "make_private_dir_shareable",
+]
 
 
 def _check_parents(target: Path, what: str) -> None:
@@ -73,11 +76,33 @@ def atomic_path(target: str | os.PathLike, *, suffix: str | None = None) -> Iter
         yield tmp_path
         with open(tmp_path, "rb+") as fh:
             os.fsync(fh.fileno())
+        # mkstemp creates 0600; give the file the mode an ordinary open() would (0666 minus the umask)
+        os.chmod(tmp_path, 0o666 & ~current_umask())
         os.replace(tmp_path, target)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             tmp_path.unlink()
         raise
+
+
+def current_umask() -> int:
+    """The process umask: from ``/proc/self/status`` on Linux, else by setting and restoring it."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)  # POSIX has no read-only call; restored at once
+    os.umask(mask)
+    return mask
+
+
+def make_private_dir_shareable(path: str | os.PathLike) -> Path:
+    """Give a folder made by ``tempfile.mkdtemp`` (0700) the mode ``mkdir`` would (0777 minus the umask)."""
+    os.chmod(path, 0o777 & ~current_umask())
+    return Path(path)
 
 
 def atomic_write_bytes(target: str | os.PathLike, data: bytes) -> Path:

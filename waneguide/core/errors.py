@@ -10,7 +10,7 @@ Messages say what was wrong, the rule, what was received, and the fix, naming th
 """
 from __future__ import annotations
 
-__all__ = ["WaneguideError", "InputError", "MissingInputError"]
+__all__ = ["WaneguideError", "InputError", "MissingInputError", "StorageError"]
 
 
 class WaneguideError(Exception):
@@ -23,3 +23,7 @@ class InputError(WaneguideError, ValueError):
 
 class MissingInputError(WaneguideError, FileNotFoundError):
     """A file or folder named as input does not exist."""
+
+
+class StorageError(WaneguideError, OSError):
+    """A store could not take a write (disk or database full, read-only); nothing stored was lost."""

@@ -34,9 +34,10 @@ from typing import Any, Mapping
 import numpy as np
 import pandas as pd
 
-from waneguide.core.atomic import check_output_path
+from waneguide.core.atomic import atomic_write_text, check_output_path
 from waneguide.core.caution import CAUTION
 from waneguide.core.errors import InputError
+from waneguide.core.settings import FUTURE_TOLERANCE_S
 from waneguide.models.bundle import load_bundle
 from waneguide.operations._audit_stats import (
     _times,
@@ -61,7 +62,7 @@ from waneguide.operations.drift import (
 from waneguide.operations.history import History, resolve_db_url, sqlite_file
 from waneguide.operations.readings import read_readings
 from waneguide.operations.registry import register_bundle
-from waneguide.operations.report import write_report
+from waneguide.operations.report import render_report
 from waneguide.operations.scoring import check_limit_pct
 from waneguide.operations.tracking import TrackedRun, experiment_name
 
@@ -322,8 +323,11 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
         ref = _reference_sample(bundle)
         if ref is not None:
             t = _times(scores["captured_at"])
-            last = t.max()
-            recent = scores[(t >= last - pd.Timedelta(days=s.recent_days)).to_numpy() &
+            # the recent window counts back from the newest capture dated up to now (a capture dated
+            # in the future, a clock error, must not move the window away from the real recent ones)
+            valid = t <= pd.Timestamp.now(tz="UTC") + pd.Timedelta(seconds=FUTURE_TOLERANCE_S)
+            last = t[valid].max()
+            recent = scores[(valid & (t >= last - pd.Timedelta(days=s.recent_days))).to_numpy() &
                             (scores["status"] == "scored").to_numpy()]
             recent_feats = hist.features(model_id=ident["model_id"],
                                          content_hashes=recent["content_hash"])
@@ -337,13 +341,20 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
                               training_ranges=ranges)
         if recalibrate:
             result.challenger = _recalibrate(bundle, hist, result, tracking_uri=tracking_uri)
-        result.audit_id = hist.add_audit(model_version=ident["model_version"], model_id=ident["model_id"],
-                                         verdict=result.verdict,
-                                         summary=result.summary(), readings_file=str(readings_csv))
+        # the audit record and its report land together or not at all: render first (what can
+        # fail on odd input), write the report, then record; a failed record takes the report back
         if report_path is not None:
-
-            result.report_path = write_report(report_path, scores=scores, audit=result, model=ident,
-                                               limit_pct=limit_pct)
+            html_text = render_report(scores=scores, audit=result, model=ident, limit_pct=limit_pct)
+            result.report_path = atomic_write_text(report_path, html_text)
+        try:
+            result.audit_id = hist.add_audit(model_version=ident["model_version"], model_id=ident["model_id"],
+                                             verdict=result.verdict, summary=result.summary(),
+                                             readings_file=str(readings_csv))
+        except BaseException:
+            if result.report_path is not None:
+                Path(result.report_path).unlink(missing_ok=True)
+                result.report_path = None
+            raise
     finally:
         hist.close()
     return result

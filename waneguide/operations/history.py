@@ -35,6 +35,7 @@ Tables
 """
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import math
@@ -51,7 +52,7 @@ from sqlalchemy import event
 from sqlalchemy.dialects.postgresql import insert as postgresql_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 
-from waneguide.core.errors import InputError
+from waneguide.core.errors import InputError, StorageError
 from waneguide.core.settings import DEFAULT_HISTORY_FILE
 
 __all__ = [
@@ -351,6 +352,20 @@ class History:
         )
         return {"metadata": md, "scores": scores, "audits": audits, "service_changes": service}
 
+    @contextlib.contextmanager
+    def _storage_errors(self):
+        """Turn "disk full" / "read-only" failures of the database into one clear :class:`StorageError`."""
+        try:
+            yield
+        except sa.exc.OperationalError as exc:
+            text = str(getattr(exc, "orig", exc)).lower()
+            if "full" in text or "readonly" in text or "read-only" in text or "no space" in text:
+                raise StorageError(f"history database {self._safe_url()} could not store the rows: "
+                                   f"{str(getattr(exc, 'orig', exc)).strip()}. Nothing already stored was lost; "
+                                   "free space (or fix the permissions) and run the command again: finished "
+                                   "rows are kept and only the rest is done.") from None
+            raise
+
     def _write(self):
         """A connection context for one write transaction (BEGIN IMMEDIATE on SQLite)."""
         conn = self.engine.connect()
@@ -416,7 +431,7 @@ class History:
         stmt = self._insert_ignore(table)
         for attempt in range(20):
             try:
-                with self._write() as conn, conn.begin():
+                with self._storage_errors(), self._write() as conn, conn.begin():
                     res = conn.execute(stmt, unique)
                     if self._returning:
                         # the rows the database inserted (RETURNING): a driver's rowcount for a
@@ -530,7 +545,7 @@ class History:
             "verdict": str(verdict),
             "summary_json": json.dumps(summary, default=_json_default, sort_keys=True),
         }
-        with self._write() as conn, conn.begin():
+        with self._storage_errors(), self._write() as conn, conn.begin():
             res = conn.execute(t.insert().values(**rec))
             return int(res.inserted_primary_key[0])
 
@@ -540,7 +555,7 @@ class History:
         t = self._tables_ready()["service_changes"]
         rec = {"changed_at": _now_iso(), "action": action, "store": store, "from_version": from_version,
                "to_version": to_version, "model_id": model_id, "os_user": os_user, "note": note}
-        with self._write() as conn, conn.begin():
+        with self._storage_errors(), self._write() as conn, conn.begin():
             return int(conn.execute(t.insert().values(**rec)).inserted_primary_key[0])
 
     def service_changes(self):

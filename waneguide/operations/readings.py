@@ -32,6 +32,7 @@ import pandas as pd
 
 from waneguide.core.atomic import atomic_path
 from waneguide.core.errors import InputError
+from waneguide.core.settings import FUTURE_TOLERANCE_S
 
 __all__ = ["READING_COLUMNS", "REQUIRED_READING_COLUMNS", "read_readings", "write_readings"]
 
@@ -101,6 +102,9 @@ def read_readings(path: str | Path):
         except (ValueError, TypeError):
             raise _bad(p, line, "date", row["date"], "must be an ISO 8601 date such as 2024-03-14") from None
         ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+        if ts > pd.Timestamp.now(tz="UTC") + pd.Timedelta(seconds=FUTURE_TOLERANCE_S):
+            raise _bad(p, line, "date", row["date"], "lies in the future (more than a day after now); check the "
+                       "date and the reading device's clock")
         dates.append(ts)
         pos.append(_number(p, line, "position_mm", row["position_mm"], allow_zero=True))
         thick.append(_number(p, line, "remaining_thickness_mm", row["remaining_thickness_mm"], allow_zero=False))

@@ -23,6 +23,7 @@ import math
 from pathlib import Path
 from typing import Any, Mapping
 
+import matplotlib
 import matplotlib.dates as mdates
 import numpy as np
 import pandas as pd
@@ -261,8 +262,16 @@ def _img(fig, alt: str, ident: str) -> str:
 
 def render_report(*, scores, audit=None, model: Mapping[str, Any] | None = None,
                   limit_pct: float | None = None, title: str | None = None) -> str:
-    """The report as one HTML string (see :func:`write_report`)."""
+    """The report as one HTML string (see :func:`write_report`).
 
+    User strings (path ids, file names, notes) are plain text in the plots: matplotlib's mathtext
+    is off (``text.parse_math``), so a ``$...$`` in a path id is drawn as typed, never parsed.
+    """
+    with matplotlib.rc_context({"text.parse_math": False}):
+        return _render_report(scores=scores, audit=audit, model=model, limit_pct=limit_pct, title=title)
+
+
+def _render_report(*, scores, audit, model, limit_pct, title) -> str:
 
     model = dict(model or {})
     if audit is not None and not model:
