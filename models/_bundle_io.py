@@ -299,7 +299,21 @@ def _verified_meta(d: Path) -> tuple[dict, dict]:
     return meta, files
 
 
-def _target_models(d: Path, meta: dict, parts: dict, arrays: dict) -> dict[str, TargetModel]:
+class _Sealed:
+    """Files of a verified bundle: only those its manifest lists can be opened, and it remembers which."""
+
+    def __init__(self, d: Path, files: dict):
+        self.d, self.files, self.current = d, files, "bundle.json"
+
+    def __call__(self, name: str) -> Path:
+        if name not in self.files:
+            raise InputError(f"bundle {str(self.d)!r}: {name} is not listed in manifest.json; every file a bundle "
+                             "loads must be listed and hashed. Refusing to load; restore the bundle or retrain")
+        self.current = name
+        return self.d / name
+
+
+def _target_models(sealed: _Sealed, meta: dict, parts: dict, arrays: dict) -> dict[str, TargetModel]:
     cols = list(meta["feature_columns"])
     targets = {}
     for name, tmeta in meta["targets"].items():
@@ -307,9 +321,9 @@ def _target_models(d: Path, meta: dict, parts: dict, arrays: dict) -> dict[str, 
         sp = dict(tmeta["scale_params"])
         for pp in (cp, sp):
             pp["monotone_rules"] = tuple(tuple(r) for r in pp.get("monotone_rules", ()))
-        central = MonotoneGBMRegressor.from_text((d / f"lgbm_{name}_centre.txt").read_text(), params=cp,
+        central = MonotoneGBMRegressor.from_text(sealed(f"lgbm_{name}_centre.txt").read_text(), params=cp,
                                                  feature_names=cols)
-        scale = MonotoneGBMRegressor.from_text((d / f"lgbm_{name}_scale.txt").read_text(), params=sp,
+        scale = MonotoneGBMRegressor.from_text(sealed(f"lgbm_{name}_scale.txt").read_text(), params=sp,
                                                feature_names=cols)
         ub = tmeta.get("upper_bound")
         targets[name] = TargetModel(
@@ -334,40 +348,53 @@ def read_bundle_dir(path: str | os.PathLike) -> tuple[dict[str, Any], Path]:
                                 "`waneguide train --out` (a model store or one of its vNNN folders)")
     d = _resolve_dir(p)
     meta, files = _verified_meta(d)
-    family = load_family(d / "family.toml")
+    sealed = _Sealed(d, files)
+    try:
+        return _read_sealed(sealed, meta), d
+    except InputError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - a listed file whose content is not what it claims (forged)
+        first = (str(exc).strip().splitlines() or [""])[0][:200]
+        raise InputError(f"bundle {str(d)!r}: {sealed.current} could not be read ({type(exc).__name__}: {first}); "
+                         "refusing to load. Restore the bundle from its source or retrain") from None
+
+
+def _read_sealed(sealed: _Sealed, meta: dict) -> dict[str, Any]:
+    d, files = sealed.d, sealed.files
+    family = load_family(sealed("family.toml"))
     if family.fingerprint != meta.get("family_fingerprint"):
         raise InputError(f"bundle {str(d)!r}: family.toml has fingerprint {family.fingerprint}, but the bundle was "
                          f"trained for {meta.get('family_fingerprint')}; refusing to load")
-    untrusted = sio.get_untrusted_types(file=d / "sklearn_parts.skops")
+    untrusted = sio.get_untrusted_types(file=sealed("sklearn_parts.skops"))
     bad = sorted(set(untrusted) - set(TRUSTED_TYPES))
     if bad:
         raise InputError(f"bundle {str(d)!r}: sklearn_parts.skops contains types outside the trust list: "
                          f"{', '.join(bad)}; refusing to load")
-    parts = sio.load(d / "sklearn_parts.skops", trusted=list(untrusted))
-    with np.load(d / "calibration.npz", allow_pickle=False) as npz:
+    parts = sio.load(sealed("sklearn_parts.skops"), trusted=list(untrusted))
+    with np.load(sealed("calibration.npz"), allow_pickle=False) as npz:
         arrays = {k: npz[k] for k in npz.files}
     cols = list(meta["feature_columns"])
     checker = None
     if meta.get("physics"):
         checker = PhysicsChecker.from_state(family, meta["physics"]["state"], **meta["physics"]["params"])
     domain = None
-    if (d / "training_domain.json").is_file() and "training_domain.json" in files:
-        ref = (pd.read_parquet(d / "reference_sample.parquet") if "reference_sample.parquet" in files
+    if "training_domain.json" in files:
+        ref = (pd.read_parquet(sealed("reference_sample.parquet")) if "reference_sample.parquet" in files
                else pd.DataFrame(columns=cols))
-        domain = TrainingDomain.from_json(json.loads((d / "training_domain.json").read_text()), ref)
+        domain = TrainingDomain.from_json(json.loads(sealed("training_domain.json").read_text()), ref)
 
     def optional(name, read):
-        return read(d / name) if name in files else None
+        return read(sealed(name)) if name in files else None
 
     kwargs = dict(
-        family=family, feature_columns=cols, targets=_target_models(d, meta, parts, arrays),
+        family=family, feature_columns=cols, targets=_target_models(sealed, meta, parts, arrays),
         detector=parts.get("detector"), checker=checker, training_domain=domain, coverage=float(meta["coverage"]),
         calibration_source=meta["calibration_source"], version=str(meta["version"]),
         metrics=optional("metrics.json", lambda f: json.loads(f.read_text())) or {},
         meta={k: v for k, v in meta.items() if k not in ("targets", "physics")},
         model_card=optional("model_card.md", lambda f: f.read_text()),
-        family_toml=(d / "family.toml").read_text(),
+        family_toml=sealed("family.toml").read_text(),
         feature_schema=optional("feature_schema.json", lambda f: json.loads(f.read_text())),
         model_id=content_id(files),
     )
-    return kwargs, d
+    return kwargs

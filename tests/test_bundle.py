@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from waneguide.core.errors import InputError
 from waneguide.models.bundle import TARGETS, load_bundle
 from waneguide.training.pipeline import TrainConfig, fit_bundle
 
@@ -245,3 +246,42 @@ def test_too_few_measured_cases_give_infinite_band(fitted):
     # band must be the whole line, never a clipped finite one
     assert np.isinf(out["mean_loss_pct_upper"]).all() and np.isinf(out["mean_loss_pct_lower"]).all()
     assert np.isfinite(out["mean_loss_pct"]).all()
+
+
+def _rehash(d):
+    """Rewrite manifest.json with the current hashes: the forger who also edits the manifest."""
+    import json as _json
+
+    from waneguide.core.atomic import file_sha256
+
+    man = _json.loads((d / "manifest.json").read_text())
+    man["files"] = {f: file_sha256(d / f) for f in man["files"] if (d / f).exists()}
+    (d / "manifest.json").write_text(_json.dumps(man, indent=2))
+
+
+def test_a_file_the_manifest_does_not_list_is_refused(fitted, tmp_path):
+    # issue 11: deleting a LightGBM file's manifest entry and swapping the file served another model
+    import json as _json
+
+    d = fitted[0].save(tmp_path / "b")
+    man = _json.loads((d / "manifest.json").read_text())
+    victim = next(f for f in man["files"] if f.startswith("lgbm_") and f.endswith("_centre.txt"))
+    del man["files"][victim]
+    (d / "manifest.json").write_text(_json.dumps(man, indent=2))
+    with pytest.raises(InputError, match=f"{victim} is not listed in manifest.json"):
+        load_bundle(d)
+
+
+@pytest.mark.parametrize("victim, garbage", [("calibration.npz", b"PK\x03\x04not a zip"),
+                                             ("lgbm_max_loss_pct_centre.txt", b"tree\nnot a model\n"),
+                                             ("training_domain.json", b"{broken")])
+def test_a_forged_file_with_a_matching_hash_is_refused_in_one_line(fitted, tmp_path, victim, garbage):
+    # issue 11: a forged file whose hash was updated ended in a traceback or a message naming no file
+    d = fitted[0].save(tmp_path / "b")
+    if not (d / victim).exists():
+        pytest.skip(f"this bundle has no {victim}")
+    (d / victim).write_bytes(garbage)
+    _rehash(d)
+    with pytest.raises(InputError, match=rf"{victim} could not be read") as info:
+        load_bundle(d)
+    assert len(str(info.value).splitlines()) == 1
