@@ -323,6 +323,23 @@ def _column(value, n, default):
     return vals
 
 
+#: Default-settings extractors by family fingerprint, so that a batch scored chunk by chunk builds
+#: each plan (windows, dispersion tables, gauge) once per process, not once per chunk.
+_SHARED: dict[str, FeatureExtractor] = {}
+_SHARED_MAX = 8
+
+
+def shared_extractor(family: Family) -> FeatureExtractor:
+    """The process-wide :class:`FeatureExtractor` with default settings for ``family`` (plans cached)."""
+    key = family.fingerprint
+    ex = _SHARED.get(key)
+    if ex is None:
+        if len(_SHARED) >= _SHARED_MAX:
+            _SHARED.pop(next(iter(_SHARED)))
+        ex = _SHARED[key] = FeatureExtractor(family)
+    return ex
+
+
 def extract_feature_table(
     family: Family,
     captures: Iterable[Capture],
@@ -355,7 +372,7 @@ def extract_feature_table(
                 "recorded on that path when the metal was sound."
             )
         per.append(by_path[c.path_id])
-    ex = FeatureExtractor(family)
+    ex = shared_extractor(family)
     df = ex._extract_many(captures, per, n_jobs=n_jobs, on_reject="raise" if on_reject == "raise" else "nan")
     if on_reject == "skip":
         attrs = dict(df.attrs)

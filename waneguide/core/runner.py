@@ -46,8 +46,11 @@ task should return what the caller needs, not write to a disk the caller may not
 """
 from __future__ import annotations
 
+import contextlib
 import numbers
 import os
+import pickle
+import tempfile
 from typing import Any, Callable, Hashable, Iterator, Mapping
 
 from joblib import Parallel, delayed
@@ -131,9 +134,11 @@ def _iterate(fn, todo, kwargs, *, n_jobs, scheduler, prefer, weigh, bar):
             results = _dask(fn, todo, kwargs, scheduler, n_jobs)
         elif n_jobs == 1 or len(todo) <= 1:
             results = ((key, fn(*args, **kwargs)) for key, args in todo.items())
-        else:
+        elif prefer == "threads" or not kwargs:
             par = Parallel(n_jobs=n_jobs, prefer=prefer, return_as="generator_unordered")
             results = par(delayed(_keyed)(fn, key, args, kwargs) for key, args in todo.items())
+        else:
+            results = _processes(fn, todo, kwargs, n_jobs)
         for key, result in results:
             pbar.update(weigh(key))
             yield key, result
@@ -141,6 +146,37 @@ def _iterate(fn, todo, kwargs, *, n_jobs, scheduler, prefer, weigh, bar):
 
 def _keyed(fn, key, args, kwargs):
     return key, fn(*args, **kwargs)
+
+
+#: ``shared`` objects a worker process has loaded, by the path of their pickle (one load per process).
+_LOADED: dict[str, dict] = {}
+
+
+def _keyed_from_file(fn, key, args, shared_path):
+    kwargs = _LOADED.get(shared_path)
+    if kwargs is None:
+        _LOADED.clear()  # one batch at a time per worker
+        with open(shared_path, "rb") as fh:
+            kwargs = _LOADED[shared_path] = pickle.load(fh)
+    return key, fn(*args, **kwargs)
+
+
+def _processes(fn, todo, kwargs, n_jobs):
+    """joblib worker processes; ``shared`` pickled once to a private temporary file, loaded once per worker.
+
+    Pickling a model bundle with every task cost more than scoring its captures; a file read once
+    by each worker does not. The file lives in the system temp folder (mode 0600) and is removed
+    when the iteration ends.
+    """
+    fd, path = tempfile.mkstemp(prefix="waneguide-shared-", suffix=".pkl")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            pickle.dump(kwargs, fh, protocol=pickle.HIGHEST_PROTOCOL)
+        par = Parallel(n_jobs=n_jobs, prefer="processes", return_as="generator_unordered")
+        yield from par(delayed(_keyed_from_file)(fn, key, args, path) for key, args in todo.items())
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(path)
 
 
 def _apply(fn, args, kwargs):
