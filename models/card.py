@@ -7,6 +7,12 @@ from waneguide.core.caution import CAUTION
 
 __all__ = ["render_model_card", "OBSERVABILITY_NOTE"]
 
+_SHIFT_HELD = {"thickness": "flange thickness scaled", "spacing": "transducer spacing scaled",
+               "shear": "bulk shear speed scaled (density, longitudinal speed held)",
+               "longitudinal": "bulk longitudinal speed scaled (density, shear speed held)",
+               "density": "density scaled (E and nu held: every speed scales by density^-1/2)",
+               "alloy": "built-in alloy swapped (2024-T3 <-> 7075-T6)"}
+
 #: Why one path pins down the mean loss but not the maximum (physics of the measurement).
 OBSERVABILITY_NOTE = (
     "A single pitch-catch path measures travel time integrated along the path: the arrival shift of a mode "
@@ -87,16 +93,7 @@ def render_model_card(bundle) -> str:
     if m.get("conventional_ratio") is not None:
         lines += [f"Conventional single-mode arrival-shift inversion vs this model on `mean_loss_pct` "
                   f"(MAE ratio conventional / model): {_fmt(m['conventional_ratio'])}.", ""]
-    if m.get("mismatch"):
-        mm = m["mismatch"]
-        lines += ["## Out-of-family detection", "",
-                  f"Stated false-alarm rate {_fmt(mm.get('false_alarm_rate'))}; observed on held-out in-family "
-                  f"cases {_fmt(mm.get('in_family_false_alarm_rate'))}.", ""]
-        if mm.get("shifts"):
-            lines += ["| shifted geometry | AUROC | flagged |", "| --- | --- | --- |"]
-            for name, r in mm["shifts"].items():
-                lines.append(f"| {name} | {_fmt(r.get('auroc'))} | {_fmt(r.get('flag_rate'))} |")
-            lines.append("")
+    lines += _mismatch_section(bundle)
     if m.get("measured"):
         lines += ["## Measured data", "", "Accuracy on measured cases (grouped cross-validation by path):", "",
                   "| target | MAE simulated model only | MAE with residual correction | correction |",
@@ -128,3 +125,82 @@ def render_model_card(bundle) -> str:
               "",
               f"> **Caution.** {CAUTION}", ""]
     return "\n".join(lines)
+
+
+def _rate_rows(table: dict) -> list[str]:
+    rows = ["| cases | n | flagged | rate | 95 % upper bound |", "| --- | --- | --- | --- | --- |"]
+    for name, r in table.items():
+        rows.append(f"| {name} | {r.get('n', '-')} | {r.get('flagged', '-')} | {_fmt(r.get('rate'))} | "
+                    f"{_fmt(r.get('upper_95'))} |")
+    return rows + [""]
+
+
+def _physics_lines(bundle) -> list[str]:
+    chk = bundle.checker
+    st = getattr(chk, "state", None) or {}
+    if not st.get("plate"):
+        return []
+    p = chk.params()
+    plate = st["plate"]
+    lines = ["Plate check (physics, per path): each baseline's S0 group delay (temperature-compensated, "
+             "Rayleigh-Lamb) and A0 thickness gauge against the family's plate. Low-frequency S0 travels at the "
+             "plate velocity sqrt(E / (rho (1 - nu^2))) (Graff, *Wave Motion in Elastic Solids*), whatever the "
+             "thickness, and wall loss only speeds it up, so a slower S0 is another alloy or a longer path; A0 "
+             "gauges the thickness, and no loss reads thicker. In-family box: path within "
+             f"{_fmt(p['path_tolerance_mm'])} mm, plate velocity within {_fmt(100 * p['velocity_tolerance'])} %, "
+             f"temperature within {_fmt(p['temperature_uncertainty_k'])} K of the recorded one, thickness within "
+             f"{_fmt(100 * p['thickness_rel_tol'])} %; flagged beyond {_fmt(plate.get('threshold'))} in-family "
+             f"standard deviations (pooled over the baselines of a path; threshold from "
+             f"{plate.get('n_baselines', '-')} training baselines and the chi-square quantile at "
+             f"{_fmt(p['false_alarm_rate'])})."]
+    if st.get("s0"):
+        lines[-1] += (f" In-family scatter of the S0 delay {_fmt(100 * st['s0'].get('sd', float('nan')))} %, of the "
+                      f"gauge {_fmt(100 * st.get('gauge', {}).get('sd', float('nan')))} % of nominal.")
+    neg = st.get("negative_loss")
+    if neg:
+        lines += ["", "Negative apparent loss (physics, per capture): a capture whose A0 packet refocuses at a larger "
+                  "thickness than its baseline's and sits ahead of it after compensation, both beyond "
+                  f"{_fmt(neg.get('threshold'))} robust standard deviations of {neg.get('n_pristine', '-')} pristine "
+                  "in-family captures, without the A0 transmission loss that heavy in-family loss brings, is flagged "
+                  "instead of being clipped silently to 0 % (reason "
+                  "\"negative apparent loss\", column `negative_apparent_loss` of the scores)."]
+    return lines + [""]
+
+
+def _mismatch_section(bundle) -> list[str]:
+    m = bundle.metrics or {}
+    mm = m.get("mismatch")
+    if not mm:
+        return []
+    phys = mm.get("physics_false_alarm_rate")
+    lines = ["## Out-of-family detection", "",
+             f"Stated false-alarm rates: {_fmt(mm.get('false_alarm_rate'))} for the statistical detector (conformal "
+             "p-value of robust Mahalanobis + IsolationForest novelty)"
+             + (f", {_fmt(phys)} for the plate check (per path) and {_fmt(phys)} for the negative-loss check "
+                f"(per capture), at most {_fmt(mm.get('false_alarm_rate', 0) + 2 * phys)} together" if phys else "")
+             + f". Observed on held-out in-family cases: {_fmt(mm.get('in_family_false_alarm_rate'))}.", ""]
+    lines += _physics_lines(bundle)
+    if mm.get("held_out"):
+        lines += ["In-family false alarms, held-out cases (95 % upper bound: one-sided Clopper-Pearson):", ""]
+        lines += _rate_rows(mm["held_out"])
+    if mm.get("edges"):
+        lines += ["In-family false alarms, small campaigns where they are most likely:", ""]
+        lines += _rate_rows(mm["edges"])
+    if mm.get("shifts"):
+        lines += ["Power per shifted family (campaigns of the tool's own forward model with one thing changed, "
+                  "processed with this family; each case its own path and baseline). AUROC against held-out in-family "
+                  "cases, of the whole verdict (flagged rows first, then by p-value) and of the statistical "
+                  "p-value alone:", "",
+                  "| shifted family | what changes | n | flagged | by the physics | AUROC | AUROC, statistical "
+                  "p-value alone |", "| --- | --- | --- | --- | --- | --- | --- |"]
+        for name, r in mm["shifts"].items():
+            lines.append(f"| {name} | {_SHIFT_HELD.get(r.get('change'), r.get('change', '-'))} | {r.get('n', '-')} | "
+                         f"{_fmt(r.get('flag_rate'))} | {_fmt(r.get('physics_flag_rate'))} | {_fmt(r.get('auroc'))} | "
+                         f"{_fmt(r.get('auroc_statistical'))} |")
+        lines.append("")
+    dropped = (bundle.meta or {}).get("dropped_features") or {}
+    if dropped:
+        lines += ["Features left out because they are degenerate on the training campaign (no usable spread; any "
+                  "other value in the field would read as a huge z-score):", ""]
+        lines += [f"- `{c}`: {why}" for c, why in dropped.items()] + [""]
+    return lines

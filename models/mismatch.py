@@ -19,16 +19,20 @@ and a capture is flagged when p <= false_alarm_rate. For in-family
 (exchangeable) data P(p <= eps) <= eps, so the stated false-alarm rate holds by
 construction.
 
-Physics part (:class:`PhysicsChecker`): readable reasons when the baseline S0
-arrival does not fit the family's path length / alloy, when the baseline A0
-arrival does not fit its flange thickness, when the baseline A0 thickness gauge
-(features.thickness_gauge: Rayleigh-Lamb least-squares fit of the A0 window with
-free S0 end-echo terms) departs from the in-family value, when the received frequency content
-is off the excitation, or when the sample rate differs. Expected arrivals are
-Rayleigh-Lamb group delays spacing / c_g(f_c, d_nominal) at the baseline's
-temperature (features.temperature.ThermalModel); an offset common to the
-in-family data (how the feature extractor times an arrival, e.g. the burst
-centre) is learned from the training campaign together with its spread.
+Standardisation. Each feature is centred on its median and divided by a robust scale: the
+largest of IQR / 1.349, the central 99 % range / (2 x 2.576) (both a Gaussian sd; the second
+keeps a feature whose bulk is narrow but whose in-family tail is long, such as a packet focus
+bounded by 1, from turning ordinary in-family damage into z-scores in the hundreds) and a floor,
+the feature's physical resolution (:func:`feature_resolution`), so that a spread that happens to
+collapse in a campaign does not either. Features that are degenerate on the training data (too
+few distinct values, or most rows on one value: pinned at a search-grid bound)
+are left out (:func:`degenerate_features`; the training drops them from the whole model and the
+model card lists them).
+
+Physics part (:class:`~waneguide.models._physics_check.PhysicsChecker`, re-exported here): the
+plate check (baseline S0 delay and A0 thickness gauge against the family's plate at the
+baseline's temperature, pooled over the baselines of a path), negative apparent loss, and the
+excitation and sample rate.
 
 A flagged capture still gets its numbers; the bundle marks them out of domain.
 """
@@ -46,14 +50,76 @@ from sklearn.ensemble._iforest import _average_path_length  # private: the exact
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from waneguide.core.errors import InputError
-from waneguide.features.temperature import ThermalModel
+from waneguide.features.schema import describe_features
+from waneguide.models._physics_check import NEGATIVE_LOSS_REASON, PHYSICS_FEATURES, PhysicsChecker
 from waneguide.models.conformal import grouped_split
 
-__all__ = ["MismatchDetector", "PhysicsChecker", "PHYSICS_FEATURES", "combine_mismatch"]
+__all__ = ["MismatchDetector", "PhysicsChecker", "PHYSICS_FEATURES", "NEGATIVE_LOSS_REASON", "combine_mismatch",
+           "degenerate_features", "feature_resolution", "has_negative_loss", "PLATE_FEATURES"]
 
-#: Features the physics checks read (produced by features.extractor).
-PHYSICS_FEATURES = ("baseline_s0_arrival_s", "capture_peak_frequency_hz", "sample_rate_hz",
-                    "baseline_a0_thickness_ratio")
+#: Baseline features of the plate itself (its S0 / A0 timing and thickness gauge). The physics check
+#: judges them against the family's stated tolerances; in a simulated campaign the plate is exact,
+#: so their spread there is measurement noise only and the statistical detector leaves them out
+#: (a real plate within tolerance would otherwise read as tens of campaign standard deviations).
+PLATE_FEATURES = ("baseline_s0_arrival_s", "s0_baseline_arrival_envelope_s", "s0_baseline_arrival_threshold_s",
+                  "a0_baseline_arrival_envelope_s", "a0_baseline_arrival_threshold_s", "baseline_a0_thickness_ratio")
+#: A feature is degenerate on the training data with fewer distinct values than this ...
+MIN_DISTINCT = 10
+#: ... or with at least this share of its rows on one value.
+MAX_MODE_SHARE = 0.5
+
+
+def degenerate_features(X: pd.DataFrame) -> dict[str, str]:
+    """Columns of ``X`` that carry no usable spread, each with the reason in words.
+
+    Degenerate: no finite value; fewer than ``max(MIN_DISTINCT, 1 % of the rows)`` distinct
+    values; or ``MAX_MODE_SHARE`` of the rows or more on one value (a search pinned at a bound
+    of its grid, e.g. the S0 sharpest thickness: S0 is hardly dispersive at low frequency-thickness,
+    so its refocusing does not pick a thickness).
+    """
+    out = {}
+    for c in X.columns:
+        v = pd.to_numeric(X[c], errors="coerce").to_numpy(dtype=float)
+        v = v[np.isfinite(v)]
+        if not v.size:
+            out[c] = "no finite value in the training data"
+            continue
+        u, counts = np.unique(v, return_counts=True)
+        need = max(MIN_DISTINCT, int(math.ceil(0.01 * v.size)))
+        share = counts.max() / v.size
+        if u.size == 1:
+            out[c] = f"constant ({u[0]:.6g}) in all {v.size} training rows"
+        elif u.size < need:
+            out[c] = f"only {u.size} distinct values in {v.size} training rows (fewer than {need})"
+        elif share >= MAX_MODE_SHARE:
+            out[c] = (f"{share:.0%} of the {v.size} training rows at one value ({u[np.argmax(counts)]:.6g}): "
+                      "pinned, e.g. at a bound of its search grid")
+    return out
+
+
+def feature_resolution(columns, family) -> np.ndarray:
+    """Physical resolution of each feature column (the floor of its robust scale), by unit.
+
+    Times: a tenth of a sample (what a parabola-refined peak resolves; common practice, no
+    source). Distances: the distance S0 covers in that time, thicknesses a tenth of the 2.5 %
+    candidate step of the sharpest-thickness search. Levels 0.1 dB, temperatures 0.1 K, voltages
+    1e-3 of full scale, frequencies one spectral bin of the record, dimensionless ratios 1e-3.
+    Columns the schema does not describe get 0 (no floor).
+    """
+    units = dict(zip(*describe_features()[["name", "unit"]].to_numpy().T))
+    fs = family.acquisition.sample_rate_hz
+    dt = 0.1 / fs
+    v_plate = family.build_material().plate_velocity_m_s
+    table = {"s": dt, "Hz": fs / family.acquisition.record_length, "dB": 0.1, "degC": 0.1, "K": 0.1,
+             "V": 1e-3 * family.full_scale_v, "1": 1e-3}
+    out = []
+    for c in columns:
+        u = units.get(c)
+        if u == "m":
+            out.append(0.0025 * family.nominal_thickness_m if "thickness" in c else dt * v_plate)
+        else:
+            out.append(float(table.get(u, 0.0)))
+    return np.asarray(out, dtype=float)
 
 
 def _pack_forest(iforest) -> dict:
@@ -126,12 +192,16 @@ class MismatchDetector(BaseEstimator):
         0.97 to 0.94-0.96 on a 2,000-case demo campaign, measured.)
     ridge : float, default 1e-3
         Added to the MCD covariance diagonal (standardised units) before inversion.
+    scale_floor : array-like of shape (n_features,) or None
+        Least robust scale of each feature, in its units (the training passes
+        :func:`feature_resolution`); None: no floor.
     random_state : int or None
 
     Attributes
     ----------
     columns_ : ndarray of int, columns used (constant ones dropped)
-    median_, scale_ : robust centring (median) and scale (IQR / 1.349) per column
+    median_, scale_ : robust centring (median) and scale per column: max(IQR / 1.349, central 99 %
+        range / 5.152, ``scale_floor``), the standard deviation when all three are 0
     mcd_, iforest_ : fitted sklearn models
     precision_ : inverse of the ridge-regularised MCD covariance
     rank_deficient_ : bool, MinCovDet reported a singular covariance (collinear features)
@@ -142,8 +212,9 @@ class MismatchDetector(BaseEstimator):
     """
 
     def __init__(self, *, false_alarm_rate=0.01, calibration_fraction=0.3, max_fit_points=3000, n_estimators=200,
-                 support_fraction=0.97, ridge=1e-3, random_state=None):
+                 support_fraction=0.97, ridge=1e-3, scale_floor=None, random_state=None):
         self.ridge = ridge
+        self.scale_floor = scale_floor
         self.false_alarm_rate = false_alarm_rate
         self.calibration_fraction = calibration_fraction
         self.max_fit_points = max_fit_points
@@ -157,10 +228,16 @@ class MismatchDetector(BaseEstimator):
             raise ValueError(f"false_alarm_rate must lie in (0, 1); got {self.false_alarm_rate!r}")
         X = validate_data(self, X, ensure_all_finite="allow-nan", dtype=np.float64, ensure_min_samples=10)
         rng = np.random.default_rng(self.random_state)
-        med = np.nanmedian(X, axis=0)
-        q75, q25 = np.nanpercentile(X, [75, 25], axis=0)
-        scale = (q75 - q25) / 1.349  # IQR of a normal = 1.349 sigma
-        std = np.nanstd(X, axis=0)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns: NaN scale, dropped below
+            med = np.nanmedian(X, axis=0)
+            q995, q75, q25, q005 = np.nanpercentile(X, [99.5, 75, 25, 0.5], axis=0)
+            std = np.nanstd(X, axis=0)
+        # Gaussian sd from the IQR (1.349 sigma) and from the central 99 % (2 x 2.576 sigma): the larger
+        floor = np.zeros(X.shape[1]) if self.scale_floor is None else np.asarray(self.scale_floor, dtype=float)
+        if floor.shape != (X.shape[1],):
+            raise ValueError(f"scale_floor needs one value per feature ({X.shape[1]}); got shape {floor.shape}")
+        scale = np.fmax(np.fmax((q75 - q25) / 1.349, (q995 - q005) / 5.152), floor)
         scale = np.where(scale > 0, scale, std)
         self.columns_ = np.flatnonzero(np.isfinite(scale) & (scale > 0))
         if self.columns_.size == 0:
@@ -192,7 +269,6 @@ class MismatchDetector(BaseEstimator):
         self.forest_ = _pack_forest(self.iforest_)
         self.ref_if_ = np.sort(_forest_score(self.forest_, Z[fit]))
         self.cal_scores_ = np.sort(self._combined(Z[cal]))
-        self.mcd_scale_ = np.sqrt(np.clip(np.diag(self.mcd_.covariance_), 1e-12, None))
         return self
 
     def _standardise(self, X):
@@ -237,10 +313,10 @@ class MismatchDetector(BaseEstimator):
         return np.where(self.p_value(X) > self.false_alarm_rate, 1, -1)
 
     def top_deviations(self, X, k: int = 3) -> list[list[tuple[str, float]]]:
-        """Per row, the ``k`` features furthest from the robust centre (name, z)."""
+        """Per row, the ``k`` features furthest from the robust centre (name, robust z)."""
         check_is_fitted(self, "cal_scores_")
         X = validate_data(self, X, reset=False, ensure_all_finite="allow-nan", dtype=np.float64)
-        Z = (self._standardise(X) - self.mcd_.location_) / self.mcd_scale_
+        Z = self._standardise(X)  # robust z: (x - median) / scale
         names = np.asarray(getattr(self, "feature_names_in_", [f"x{j}" for j in range(self.n_features_in_)]))
         names = names[self.columns_]
         order = np.argsort(-np.abs(Z), axis=1)[:, :k]
@@ -252,207 +328,13 @@ class MismatchDetector(BaseEstimator):
         return tags
 
 
-class PhysicsChecker:
-    """Family-bound physics plausibility checks with readable reasons.
-
-    Baseline arrivals (the baseline is the pristine record of the path, so its arrival
-    times measure the path, not the damage):
-
-    * S0, nearly dispersion-free at low frequency-thickness, times the path length and
-      the alloy (plate velocity);
-    * A0, strongly dispersive (c_g ~ sqrt(f d) at low fd; Graff 1975 sec. 4.2), times the
-      flange thickness.
-
-    Each expected arrival is the Rayleigh-Lamb group delay at the baseline's own
-    temperature (features.temperature.ThermalModel: expansion and dE/dT), plus the
-    extractor's timing offset and the spread learned from the in-family campaign.
-
-    Parameters
-    ----------
-    family : features.family.Family
-    arrival_rel_tol : float, default 0.0075
-        Least tolerance on the baseline S0 arrival, as a fraction of the expected time
-        (the 2024-T3 / 7075-T6 plate velocities differ by 1.5 %).
-    a0_arrival_rel_tol : float, default 0.02
-        Least tolerance on the baseline A0 arrival (a 15 % thicker demo-fb2 flange moves it by ~3.5 %).
-    frequency_rel_tol : float, default 0.25
-        Least tolerance on the peak frequency, as a fraction of the centre frequency.
-    sample_rate_rel_tol : float, default 1e-3
-    spread_factor : float, default 6
-        Tolerances widen to ``spread_factor`` robust standard deviations of the in-family values.
-    thickness_rel_tol : float, default 0.03
-        Least tolerance on the baseline A0 thickness gauge (features.thickness_gauge), as a
-        fraction of the nominal thickness; it also widens to ``spread_factor`` robust standard
-        deviations and 1.25 x the ``tail_quantile`` of the in-family deviations.
-    tail_quantile : float, default 0.999
-        Arrival tolerances also widen to 1.25 x this quantile of the in-family absolute
-        deviations, so that the physics checks alone flag at most about 0.1 % of in-family
-        baselines (echo overlap spreads the A0 envelope arrival with heavy tails).
-    """
-
-    _ARRIVALS = (
-        # mode, feature column(s) tried in order, tolerance attribute, what to check
-        ("S0", ("baseline_s0_arrival_s", "s0_baseline_arrival_envelope_s"), "arrival_rel_tol",
-         "check the transducer spacing and the alloy"),
-        ("A0", ("a0_baseline_arrival_envelope_s",), "a0_arrival_rel_tol",
-         "check the flange thickness"),
-    )
-
-    def __init__(self, family, *, arrival_rel_tol=0.0075, a0_arrival_rel_tol=0.02, frequency_rel_tol=0.25,
-                 sample_rate_rel_tol=1e-3, spread_factor=6.0, tail_quantile=0.999, thickness_rel_tol=0.03):
-        self.family = family
-        self.thickness_rel_tol = thickness_rel_tol
-        self.tail_quantile = tail_quantile
-        self._thermal_model = None  # features.temperature.ThermalModel, built on first use
-        self.arrival_rel_tol = arrival_rel_tol
-        self.a0_arrival_rel_tol = a0_arrival_rel_tol
-        self.frequency_rel_tol = frequency_rel_tol
-        self.sample_rate_rel_tol = sample_rate_rel_tol
-        self.spread_factor = spread_factor
-        self.state: dict = {}
-
-    def _thermal(self):
-        if self._thermal_model is None:
-            self._thermal_model = ThermalModel(self.family)
-        return self._thermal_model
-
-    def expected_s0_arrival_s(self) -> float:
-        """spacing / c_g of S0 at the centre frequency, nominal thickness, reference temperature."""
-        return self.expected_arrival_s("S0")
-
-    def expected_arrival_s(self, mode: str, temperature_c=None):
-        """Rayleigh-Lamb group delay of ``mode`` over the path at ``temperature_c`` [s]."""
-        t = self.family.build_material().reference_temperature_c if temperature_c is None else temperature_c
-        out = self._thermal().arrival_time_s(mode, t)
-        return float(out) if np.ndim(out) == 0 else out
-
-    def _base_state(self) -> dict:
-        return {"expected_s0_arrival_s": self.expected_s0_arrival_s(),
-                "expected_a0_arrival_s": self.expected_arrival_s("A0"),
-                "centre_frequency_hz": self.family.excitation.centre_frequency_hz,
-                "sample_rate_hz": self.family.acquisition.sample_rate_hz}
-
-    def _robust(self, values):
-        """(median, 1.4826 MAD, 1.25 x the tail quantile of |x - median|) of the finite values, or ().
-
-        1.4826 MAD estimates a Gaussian standard deviation (Rousseeuw & Croux 1993,
-        doi:10.1080/01621459.1993.10476408).
-        """
-        v = np.asarray(values, dtype=float)
-        v = v[np.isfinite(v)]
-        if not v.size:
-            return ()
-        med = float(np.median(v))
-        dev = np.abs(v - med)
-        return med, float(1.4826 * np.median(dev)), float(1.25 * np.quantile(dev, self.tail_quantile))
-
-    @staticmethod
-    def _column(feature_df, names, n):
-        for c in names:
-            if c in feature_df:
-                return pd.to_numeric(feature_df[c], errors="coerce").to_numpy(dtype=float)
-        return np.full(n, np.nan)
-
-    def _baseline_temperature(self, feature_df, n):
-        t = self._column(feature_df, ("baseline_temperature_c",), n)
-        ref = self.family.build_material().reference_temperature_c
-        return np.where(np.isfinite(t), t, ref)
-
-    def _arrival_residual(self, mode, names, feature_df):
-        """Measured baseline arrival minus its temperature-compensated Rayleigh-Lamb value."""
-        n = len(feature_df)
-        measured = self._column(feature_df, names, n)
-        expected = np.asarray(self.expected_arrival_s(mode, self._baseline_temperature(feature_df, n)), dtype=float)
-        return measured - expected, measured, expected
-
-    def fit(self, feature_df: pd.DataFrame) -> "PhysicsChecker":
-        """Learn the extractor's arrival offsets and the in-family spreads."""
-        st = self._base_state()
-        for mode, names, _, _ in self._ARRIVALS:
-            r, _, _ = self._arrival_residual(mode, names, feature_df)
-            key = mode.lower()
-            stats = self._robust(r)
-            if stats:
-                st[f"{key}_offset_s"], st[f"{key}_spread_s"], st[f"{key}_tail_s"] = stats
-        stats = self._robust(self._column(feature_df, ("baseline_a0_thickness_ratio",), len(feature_df)))
-        if stats:
-            st["thickness_median"], st["thickness_spread"], st["thickness_tail"] = stats
-        stats = self._robust(self._column(feature_df, ("capture_peak_frequency_hz",), len(feature_df)))
-        if stats:
-            st["frequency_median"], st["frequency_spread"] = stats[:2]
-        self.state = st
-        return self
-
-    @classmethod
-    def from_state(cls, family, state: dict, **kw) -> "PhysicsChecker":
-        obj = cls(family, **kw)
-        obj.state = dict(state)
-        return obj
-
-    def params(self) -> dict:
-        return {"arrival_rel_tol": self.arrival_rel_tol, "a0_arrival_rel_tol": self.a0_arrival_rel_tol,
-                "frequency_rel_tol": self.frequency_rel_tol, "sample_rate_rel_tol": self.sample_rate_rel_tol,
-                "spread_factor": self.spread_factor, "tail_quantile": self.tail_quantile,
-                "thickness_rel_tol": self.thickness_rel_tol}
-
-    def reasons(self, feature_df: pd.DataFrame) -> list[list[str]]:
-        """One list of readable reasons per row (empty list: passes)."""
-        if not self.state:
-            self.state = self._base_state()
-        st, fam = self.state, self.family
-        n = len(feature_df)
-        out: list[list[str]] = [[] for _ in range(n)]
-        mat = fam.build_material().name
-        # 1. baseline S0 / A0 arrivals vs path length, alloy and flange thickness
-        for mode, names, tol_attr, advice in self._ARRIVALS:
-            key = mode.lower()
-            r, measured, expected = self._arrival_residual(mode, names, feature_df)
-            offset = st.get(f"{key}_offset_s", 0.0)
-            dev = r - offset
-            t_ref = st.get(f"expected_{key}_arrival_s", float(np.nanmedian(expected)) if n else 0.0)
-            tol = max(getattr(self, tol_attr) * t_ref, self.spread_factor * st.get(f"{key}_spread_s", 0.0),
-                      st.get(f"{key}_tail_s", 0.0))
-            for i in np.flatnonzero(np.isfinite(dev) & (np.abs(dev) > tol)):
-                centre = expected[i] + offset
-                out[i].append(
-                    f"baseline {mode} arrival {measured[i] * 1e6:.2f} us does not fit the family "
-                    f"({centre * 1e6:.2f} +- {tol * 1e6:.2f} us expected at the baseline temperature for the "
-                    f"{fam.path.transducer_spacing_mm:g} mm path in {fam.section.flange_thickness_mm:g} mm {mat}; "
-                    f"Rayleigh-Lamb {mode} group delay {expected[i] * 1e6:.2f} us): {advice}")
-        # 1b. baseline A0 thickness gauge vs the flange thickness
-        g = self._column(feature_df, ("baseline_a0_thickness_ratio",), n)
-        if "thickness_median" in st:
-            gcen = st["thickness_median"]
-            gtol = max(self.thickness_rel_tol, self.spread_factor * st.get("thickness_spread", 0.0),
-                       st.get("thickness_tail", 0.0))
-            t_nom_mm = fam.section.flange_thickness_mm
-            for i in np.flatnonzero(np.isfinite(g) & (np.abs(g - gcen) > gtol)):
-                out[i].append(
-                    f"baseline A0 thickness gauge reads {g[i] / gcen * t_nom_mm:.2f} mm against the family's "
-                    f"{t_nom_mm:g} mm flange (accepted {(gcen - gtol) / gcen * t_nom_mm:.2f}-"
-                    f"{(gcen + gtol) / gcen * t_nom_mm:.2f} mm, Rayleigh-Lamb A0 fit of the baseline at its "
-                    f"temperature): check the flange thickness")
-        # 2. frequency content vs the excitation
-        f = self._column(feature_df, ("capture_peak_frequency_hz",), n)
-        fc = st["centre_frequency_hz"]
-        fcen = st.get("frequency_median", fc)
-        ftol = max(self.frequency_rel_tol * fc, self.spread_factor * st.get("frequency_spread", 0.0))
-        for i in np.flatnonzero(np.isfinite(f) & (np.abs(f - fcen) > ftol)):
-            out[i].append(f"peak frequency {f[i] / 1e3:.1f} kHz is off the family's {fc / 1e3:g} kHz excitation "
-                          f"(accepted {(fcen - ftol) / 1e3:.1f}-{(fcen + ftol) / 1e3:.1f} kHz): check the "
-                          f"pulser settings and the transducers")
-        # 3. sample rate
-        fs = self._column(feature_df, ("sample_rate_hz",), n)
-        fs_fam = st["sample_rate_hz"]
-        for i in np.flatnonzero(np.isfinite(fs) & (np.abs(fs - fs_fam) > self.sample_rate_rel_tol * fs_fam)):
-            out[i].append(f"sample rate {fs[i] / 1e6:g} MHz differs from the family's {fs_fam / 1e6:g} MHz: "
-                          f"re-acquire at the family's rate or use a family defined for this rate")
-        return out
-
-
 def combine_mismatch(detector: MismatchDetector | None, checker: PhysicsChecker | None,
                      feature_df: pd.DataFrame, feature_columns, X: pd.DataFrame | None = None) -> pd.DataFrame:
     """``in_family``, ``mismatch_p_value``, ``mismatch_reasons`` ("; "-joined) per row.
+
+    A capture reading thicker than its baseline gets a reason starting with
+    :data:`NEGATIVE_LOSS_REASON` (see :func:`has_negative_loss`); like every reason it puts the
+    row out of family.
 
     ``X``: the numeric feature matrix of ``feature_df`` (columns ``feature_columns``), when
     the caller already has it.
@@ -467,18 +349,27 @@ def combine_mismatch(detector: MismatchDetector | None, checker: PhysicsChecker 
         names = [cols[j] for j in np.flatnonzero(nan_rows[i])]
         shown = ", ".join(names[:4]) + (f" and {len(names) - 4} more" if len(names) > 4 else "")
         reasons[i].append(f"feature(s) {shown} could not be computed")
+    if checker is not None and n:  # the physics first: its reasons say what to check
+        for i, r in enumerate(checker.reasons(feature_df)):
+            reasons[i].extend(r)
     p = np.full(n, math.nan)
     if detector is not None and n:
-        p = detector.p_value_array(X.to_numpy(dtype=float))
+        names = getattr(detector, "feature_names_in_", None)
+        Xd = X if names is None else X.reindex(columns=list(names))  # the detector may use a subset
+        p = detector.p_value_array(Xd.to_numpy(dtype=float))
         flagged = p <= detector.false_alarm_rate
         if flagged.any():
-            tops = detector.top_deviations(X.iloc[np.flatnonzero(flagged)])
+            tops = detector.top_deviations(Xd.iloc[np.flatnonzero(flagged)])
             for i, top in zip(np.flatnonzero(flagged), tops):
                 desc = ", ".join(f"{name} (z = {z:+.1f})" for name, z in top)
                 reasons[i].append(f"features unlike the family's training data (p = {p[i]:.4f} <= "
                                   f"{detector.false_alarm_rate:g}); furthest: {desc}")
-    if checker is not None and n:
-        for i, r in enumerate(checker.reasons(feature_df)):
-            reasons[i].extend(r)
     return pd.DataFrame({"in_family": [not r for r in reasons], "mismatch_p_value": p,
                          "mismatch_reasons": ["; ".join(r) for r in reasons]}, index=feature_df.index)
+
+
+def has_negative_loss(reasons) -> np.ndarray:
+    """True where a ``mismatch_reasons`` text holds the negative-apparent-loss reason."""
+    marker = NEGATIVE_LOSS_REASON + ":"
+    return np.array([isinstance(r, str) and (r.startswith(marker) or f"; {marker}" in r) for r in reasons],
+                    dtype=bool)

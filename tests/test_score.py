@@ -376,3 +376,24 @@ def test_concurrent_saves_into_one_store_each_get_their_own_version(setup, tmp_p
     assert names == ["v001", "v002", "v003", "v004"]
     for name in names:  # every saved version loads, and says its own version
         assert load_bundle(store / name).version == name
+
+
+def test_a_capture_dated_in_the_future_is_flagged_not_trusted(setup, tmp_path):
+    # issue 11: a captured_at in 2999 was scored without a flag and moved the audit's recent window
+    future = tmp_path / "future"
+    future.mkdir()
+    _rewrite(setup["caps"] / "P01_000.npz", future / "P01_future.npz", captured_at="2999-01-01T00:00:00+00:00")
+    out = score_captures(setup["bundle"], future, baselines=setup["caps"] / "baselines",
+                         db_url=f"sqlite:///{tmp_path / 'h.db'}")
+    assert out["in_family"].tolist() == [False]
+    assert "lies in the future" in out["mismatch_reasons"].iloc[0]
+    assert np.isfinite(out["max_loss_pct"].iloc[0])  # the numbers are kept, marked
+
+
+def test_a_reading_dated_in_the_future_is_refused(tmp_path):
+    from waneguide.operations.readings import read_readings
+
+    f = tmp_path / "r.csv"
+    f.write_text("path_id,date,position_mm,remaining_thickness_mm,method\nP01,2999-01-01,10,1.9,UT gauge\n")
+    with pytest.raises(ValueError, match=r"r\.csv.*line 2.*date.*lies in the future"):
+        read_readings(f)

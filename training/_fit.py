@@ -28,7 +28,13 @@ from waneguide.models.gbm import (
     resolve_monotone_constraints,
 )
 from waneguide.models.gp import StandardisedGPRegressor, farthest_point_subset
-from waneguide.models.mismatch import MismatchDetector, PhysicsChecker
+from waneguide.models.mismatch import (
+    PLATE_FEATURES,
+    MismatchDetector,
+    PhysicsChecker,
+    degenerate_features,
+    feature_resolution,
+)
 
 __all__ = ["TrainConfig", "default_feature_columns", "fit_bundle"]
 
@@ -45,7 +51,8 @@ class TrainConfig:
     coverage: float = 0.9
     test_fraction: float = 0.2
     calibration_fraction: float = 0.2
-    false_alarm_rate: float = 0.01
+    false_alarm_rate: float = 0.01  # statistical detector (conformal p-value threshold)
+    physics_false_alarm_rate: float = 0.005  # plate check (per path) and negative-loss check (per capture), each
     n_estimators: int = 300
     learning_rate: float = 0.05
     num_leaves: int = 31
@@ -182,15 +189,26 @@ def fit_bundle(family, features: pd.DataFrame, targets: pd.DataFrame, groups, *,
     if len(features) != len(targets):
         raise InputError(f"features has {len(features)} rows but targets has {len(targets)}; give one target "
                          "row per feature row")
-    cols = list(feature_columns) if feature_columns is not None else default_feature_columns(features)
-    if not cols:
+    candidates = list(feature_columns) if feature_columns is not None else default_feature_columns(features)
+    if not candidates:
         raise InputError("no numeric feature columns to train on; check the feature table")
     names = [t for t in TARGETS if t in targets.columns]
     if not names:
         raise InputError(f"targets has none of the target columns {list(TARGETS)}; got {list(targets.columns)}")
     rng = np.random.default_rng(random_state)
     seed = lambda: int(rng.integers(2**31 - 1))  # noqa: E731
-    X = features.reindex(columns=cols).apply(pd.to_numeric, errors="coerce").astype(float).reset_index(drop=True)
+    X_all = features.reindex(columns=candidates).apply(pd.to_numeric, errors="coerce").astype(float)
+    X_all = X_all.reset_index(drop=True)
+    # a feature with no usable spread in the campaign (constant, or pinned at a search-grid bound)
+    # carries nothing to learn and turns any other value in the field into a huge z: left out
+    dropped = degenerate_features(X_all)
+    cols = [c for c in candidates if c not in dropped]
+    if not cols:
+        raise InputError(f"every feature column is degenerate on the training data ({dropped}); train on a "
+                         "campaign whose cases vary")
+    for c, why in dropped.items():
+        log.info("feature %s left out: %s", c, why)
+    X = X_all[cols]
     Y = targets.reset_index(drop=True)
     groups = np.asarray(groups)
     cal = grouped_split(groups, cfg.calibration_fraction, seed())
@@ -214,15 +232,19 @@ def fit_bundle(family, features: pd.DataFrame, targets: pd.DataFrame, groups, *,
         tmodels[name] = _fit_target(sh, family, name, cols, ytr, Xcal, ycal, gbm_kw, diag)
         diag["timings_s"][name] = time.perf_counter() - t0
     t0 = time.perf_counter()
+    det_cols = [c for c in cols if c not in PLATE_FEATURES] or cols  # the plate is the physics check's
     detector = MismatchDetector(false_alarm_rate=cfg.false_alarm_rate, n_estimators=cfg.mismatch_estimators,
-                                random_state=seed()).fit(Xtr, groups=gtr)
-    checker = PhysicsChecker(family).fit(features.reset_index(drop=True)[tr])
+                                scale_floor=feature_resolution(det_cols, family),
+                                random_state=seed()).fit(Xtr[det_cols], groups=gtr)
+    checker = PhysicsChecker(family, false_alarm_rate=cfg.physics_false_alarm_rate).fit(
+        features.reset_index(drop=True)[tr], targets=Y[tr])
     diag["timings_s"]["mismatch"] = time.perf_counter() - t0
-    domain = TrainingDomain.from_features(Xtr, rng=seed())
+    domain = TrainingDomain.from_features(X_all[tr].reset_index(drop=True), rng=seed())
     bundle = ModelBundle(
         family=family, feature_columns=cols, targets=tmodels, detector=detector, checker=checker,
         training_domain=domain, coverage=cfg.coverage, calibration_source="simulated",
-        metrics={"fit": jsonable(diag)}, meta=dict(meta or {}, config=jsonable(cfg.__dict__)),
+        metrics={"fit": jsonable(diag)},
+        meta=dict(meta or {}, config=jsonable(cfg.__dict__), dropped_features=dropped),
         family_toml=family_toml, feature_schema=dict(feature_schema) if feature_schema else None,
     )
     bundle.metrics["gp"] = {t: {"bound_hits": r.get("bound_hits", [])} for t, r in diag["gp"].items()}

@@ -40,13 +40,21 @@ from waneguide.training._data import (
     load_family_and_text,
     read_measured,
 )
-from waneguide.training._evaluate import DEFAULT_SHIFTS, evaluate_bundle, mismatch_study, shifted_family
+from waneguide.training._evaluate import (
+    DEFAULT_SHIFT_CASES,
+    DEFAULT_SHIFTS,
+    evaluate_bundle,
+    false_alarms_by_group,
+    mismatch_study,
+    shifted_family,
+)
 from waneguide.training._fit import TrainConfig, default_feature_columns, fit_bundle
 
 __all__ = [
     "TrainConfig", "TrainResult", "fit_bundle", "evaluate_bundle", "default_feature_columns", "train_model",
     "read_measured", "mismatch_study", "shifted_family", "campaign_features", "cached_campaign_features",
-    "extractor_settings", "feature_cache_key", "format_summary", "DEFAULT_SHIFTS",
+    "extractor_settings", "feature_cache_key", "format_summary", "DEFAULT_SHIFTS", "DEFAULT_SHIFT_CASES",
+    "false_alarms_by_group",
 ]
 
 
@@ -98,13 +106,22 @@ def _held_out_metrics(bundle, fam, Ft: pd.DataFrame, Ct: pd.DataFrame, cfg: Trai
     conv_mae = float(np.nanmean(np.abs(conv - Ct["mean_loss_pct"].to_numpy(dtype=float))))
     metrics["conventional_mae_mean_loss_pct"] = conv_mae
     metrics["conventional_ratio"] = conv_mae / max(ev["mean_loss_pct"]["mae"], 1e-12)
+    pred = bundle.predict_frame(Ft)
+    mx = Ct["max_loss_pct"].to_numpy(dtype=float)
+    lo, hi = fam.domain.temperature_c
+    edge = 0.1 * (hi - lo)  # the outer tenth of the simulated temperature range at either end
+    tb = Ct["baseline_temperature_c"].to_numpy(dtype=float)
+    groups = {"pristine": mx == 0, "max loss >= 25 %": mx >= 25,
+              "baseline temperature at an end of the range": (tb <= lo + edge) | (tb >= hi - edge)}
     metrics["mismatch"] = {"false_alarm_rate": cfg.false_alarm_rate,
-                           "in_family_false_alarm_rate": ev["in_family_false_alarm_rate"]}
+                           "physics_false_alarm_rate": cfg.physics_false_alarm_rate,
+                           "in_family_false_alarm_rate": ev["in_family_false_alarm_rate"],
+                           "held_out": false_alarms_by_group(pred, groups)}
     return metrics
 
 
 def train_model(family, campaign_dir, out_dir, *, measured_csv=None, random_state=0, progress=True,
-                config: TrainConfig | None = None, shift_study: bool = True, shift_cases: int = 120,
+                config: TrainConfig | None = None, shift_study: bool = True, shift_cases: int | None = None,
                 n_jobs: int = 1) -> TrainResult:
     """Features, fit, calibrate, evaluate, write the bundle (next ``vNNN`` of ``out_dir``).
 
@@ -116,7 +133,10 @@ def train_model(family, campaign_dir, out_dir, *, measured_csv=None, random_stat
         the campaign's feature table and the mismatch-study campaigns are cached in ``out_dir/.cache``
     measured_csv : optional CSV of measured cases (see :func:`read_measured`); when given, the
         bands are recalibrated on them (CV+) and a residual correction is chosen by grouped CV
-    shift_study : simulate small shifted-geometry campaigns to measure the mismatch AUROC
+    shift_study : simulate small campaigns of shifted families (thickness, shear / longitudinal speed,
+        density, path, alloy) and of in-family edges (temperature ends, heavy loss) and state the
+        detector's flag rate on each (:func:`mismatch_study`)
+    shift_cases : cases per shifted family (default :data:`DEFAULT_SHIFT_CASES`)
     n_jobs : processes for the feature extraction
 
     Nothing is logged to MLflow (see :func:`waneguide.operations.train.train_and_register`).
@@ -159,10 +179,11 @@ def train_model(family, campaign_dir, out_dir, *, measured_csv=None, random_stat
     Ft, Ct = feats[tst].reset_index(drop=True), cases[tst].reset_index(drop=True)
     metrics = _held_out_metrics(bundle, fam, Ft, Ct, cfg)
     if shift_study:
-        p_in = bundle.predict_frame(Ft)["mismatch_p_value"].to_numpy(dtype=float)
-        metrics["mismatch"]["shifts"] = mismatch_study(bundle, fam, p_in, n_cases=shift_cases,
-                                                       seed=random_state + 1, work_dir=out_dir / ".cache",
-                                                       progress=progress)
+        t_study = time.perf_counter()
+        study = mismatch_study(bundle, fam, bundle.predict_frame(Ft), n_cases=shift_cases or DEFAULT_SHIFT_CASES,
+                               seed=random_state + 1, work_dir=out_dir / ".cache", progress=progress)
+        metrics["mismatch"].update(study)
+        metrics.setdefault("timings_s", {})["shift_study"] = time.perf_counter() - t_study
     if measured is not None:
         mf, mt, mg = measured
         try:
@@ -172,7 +193,7 @@ def train_model(family, campaign_dir, out_dir, *, measured_csv=None, random_stat
         metrics["measured"] = {t: {"n": r["n"], "correction": r["correction"], "mae_without": r["cv_mae"]["none"],
                                    "mae_with": r["cv_mae"][r["correction"]]}
                                for t, r in bundle.meta["recalibration"].items()}
-    metrics["timings_s"] = {"fit": t_fit, "total_before_save": time.perf_counter() - t_start}
+    metrics.setdefault("timings_s", {}).update(fit=t_fit, total_before_save=time.perf_counter() - t_start)
     bundle.metrics.update(metrics)
     path = bundle.save_version(out_dir)  # renders the model card at the final version
     return TrainResult(bundle_path=path, metrics=bundle.metrics, bundle=bundle, messages=msgs)
@@ -191,10 +212,15 @@ def format_summary(result: TrainResult) -> str:
         lines.append(f"  conventional single-mode MAE / model MAE (mean_loss_pct): {m['conventional_ratio']:.2f}")
     mm = m.get("mismatch", {})
     if mm:
-        lines.append(f"mismatch: stated false-alarm rate {mm['false_alarm_rate']:g}, "
-                     f"observed in family {mm['in_family_false_alarm_rate']:.3f}")
+        lines.append(f"mismatch: stated false-alarm rate {mm['false_alarm_rate']:g} (statistical) + "
+                     f"{mm.get('physics_false_alarm_rate', 0):g} per physics check, observed in family "
+                     f"{mm['in_family_false_alarm_rate']:.3f}")
+        for kind, table in (("held-out", mm.get("held_out") or {}), ("campaign", mm.get("edges") or {})):
+            for name, r in table.items():
+                lines.append(f"  in family ({kind}), {name:<44} flagged {r['flagged']}/{r['n']}")
         for name, r in (mm.get("shifts") or {}).items():
-            lines.append(f"  {name:<24} AUROC {r['auroc']:.3f}  flagged {r['flag_rate']:.2f}")
+            lines.append(f"  {name:<28} flagged {r['flag_rate']:.2f} (physics {r.get('physics_flag_rate', 0):.2f})  "
+                         f"AUROC {r['auroc']:.3f} (statistical {r.get('auroc_statistical', float('nan')):.3f})")
     for t, r in (m.get("measured") or {}).items():
         lines.append(f"measured {t}: MAE {r['mae_without']:.3f} (simulated model) -> {r['mae_with']:.3f} "
                      f"({r['correction']}), n = {r['n']}")

@@ -20,7 +20,9 @@
    so a killed batch keeps every finished chunk.
 
 The result has :data:`SCORE_OUTPUT_COLUMNS` first (the ``--out`` CSV contract), then
-``content_hash, model_version, status, newly_scored, limit_pct`` and the estimates in mm.
+``content_hash, model_version, status, newly_scored, limit_pct``, the estimates in mm and
+``negative_apparent_loss`` (the capture reads thicker than its baseline: its estimate is clipped
+to 0 % and flagged, never silently; :data:`waneguide.models.mismatch.NEGATIVE_LOSS_REASON`).
 """
 from __future__ import annotations
 
@@ -38,11 +40,13 @@ import pandas as pd
 from waneguide.core.atomic import atomic_path
 from waneguide.core.caution import CAUTION
 from waneguide.core.errors import InputError
+from waneguide.core.settings import FUTURE_TOLERANCE_S
 from waneguide.core.runner import check_n_jobs, check_scheduler, run_tasks
 from waneguide.features.capture import Capture
 from waneguide.features.extractor import extract_feature_table
 from waneguide.features.io import capture_files, read_capture
 from waneguide.models.bundle import ModelBundle, load_bundle
+from waneguide.models.mismatch import has_negative_loss
 from waneguide.operations.history import History, capture_content_hash
 from waneguide.operations.registry import resolve_model
 
@@ -63,7 +67,7 @@ SCORE_OUTPUT_COLUMNS = (
     "exceed_probability", "in_family", "mismatch_p_value", "mismatch_reasons", "quality_flags",
 )
 _EXTRA_COLUMNS = ("content_hash", "model_version", "model_id", "status", "newly_scored", "limit_pct",
-                  "max_loss_mm", "max_loss_mm_lower", "max_loss_mm_upper")
+                  "max_loss_mm", "max_loss_mm_lower", "max_loss_mm_upper", "negative_apparent_loss")
 _PREDICTION_COLUMNS = ("max_loss_pct", "max_loss_pct_lower", "max_loss_pct_upper", "max_loss_mm",
                        "max_loss_mm_lower", "max_loss_mm_upper", "mean_loss_pct", "mean_loss_pct_lower",
                        "mean_loss_pct_upper", "exceed_probability", "in_family", "mismatch_p_value",
@@ -186,6 +190,11 @@ def _check_item(item, family, hashes_done: set, baseline_paths) -> tuple[str, st
     return h, cap.path_id, why, h in hashes_done
 
 
+def _check_task(items, *, family, done, baseline_paths) -> list[tuple]:
+    """Runner task: :func:`_check_item` for a chunk of captures."""
+    return [_check_item(it, family, done, baseline_paths) for it in items]
+
+
 def _score_chunk(bundle, items: Sequence, baselines_by_path: dict, limit_pct, batch_id: str) -> list[dict]:
     """Score one chunk; returns history rows (worker side: no database access)."""
 
@@ -201,11 +210,15 @@ def _score_chunk(bundle, items: Sequence, baselines_by_path: dict, limit_pct, ba
         for c in _PREDICTION_COLUMNS:
             if c in p:
                 pred.loc[ok, c] = p[c].to_numpy(object)
+    now = pd.Timestamp.now(tz="UTC")
     num_cols = [c for c in feats.columns if c not in ("file", "path_id", "captured_at", "quality_flags",
                                                      "baseline_file") and pd.api.types.is_numeric_dtype(feats[c])]
+    # whole columns to plain Python once (row-by-row pandas indexing cost more than the features)
+    num = feats[num_cols].to_numpy(float)
+    flags = (feats["quality_flags"].tolist() if "quality_flags" in feats else [""] * len(caps))
+    pred_rows = pred.to_dict(orient="records")
     rows = []
     for i, cap in enumerate(caps):
-        f = feats.iloc[i]
         rec: dict[str, Any] = {
             "content_hash": capture_content_hash(cap),
             "model_version": str(bundle.version),
@@ -216,22 +229,40 @@ def _score_chunk(bundle, items: Sequence, baselines_by_path: dict, limit_pct, ba
             "path_id": cap.path_id,
             "captured_at": cap.captured_at,
             "temperature_c": cap.temperature_c,
-            "quality_flags": f.get("quality_flags", ""),
+            "quality_flags": flags[i],
             "limit_pct": limit_pct,
             "batch_id": batch_id,
         }
         if ok[i]:
             rec["status"] = "scored"
-            for c in _PREDICTION_COLUMNS:
-                rec[c] = pred.iloc[i][c]
-            vals = {c: float(f[c]) for c in num_cols if np.isfinite(f[c])}
+            rec.update(pred_rows[i])
+            vals = {c: float(v) for c, v in zip(num_cols, num[i]) if np.isfinite(v)}
             rec["features_json"] = json.dumps(vals, separators=(",", ":"))
+            future = _future_reason(cap.captured_at, now)
+            if future:  # a clock error must not pass as the newest state of the structure
+                rec["in_family"] = False
+                rec["mismatch_reasons"] = "; ".join(x for x in (future, rec.get("mismatch_reasons")) if x)
         else:
             rec["status"] = "rejected"
             rec["in_family"] = False
-            rec["mismatch_reasons"] = "rejected by the quality gate: " + str(f.get("quality_flags", ""))
+            rec["mismatch_reasons"] = "rejected by the quality gate: " + str(flags[i])
         rows.append(rec)
     return rows
+
+
+def _future_reason(captured_at, now: pd.Timestamp) -> str | None:
+    """A mismatch reason when ``captured_at`` lies more than :data:`FUTURE_TOLERANCE_S` after ``now``."""
+    if not captured_at:
+        return None
+    try:
+        ts = pd.Timestamp(captured_at)
+    except (ValueError, TypeError):
+        return None
+    ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+    if ts <= now + pd.Timedelta(seconds=FUTURE_TOLERANCE_S):
+        return None
+    return (f"captured_at {captured_at} lies in the future (now {now.isoformat(timespec='minutes')}): check the "
+            "acquisition unit's clock; the estimate is kept but not counted as in family")
 
 
 def _chunks(seq: list, size: int) -> list[list]:
@@ -334,7 +365,13 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
     hist = History(db_url)
     try:
         done = hist.scored_hashes(model_id=bundle.model_id)
-        checks = [_check_item(it, family, done, by_path) for it in items]
+        # the checks read every capture once (hash, family fit, baseline path): on the same workers
+        check_chunks = _chunks(list(range(len(items))), max(int(chunk_size), 64))
+        checked = dict(run_tasks(_check_task, {k: ([items[i] for i in idx],) for k, idx in enumerate(check_chunks)},
+                                 n_jobs=n_jobs, scheduler=scheduler, progress=progress, desc="checking",
+                                 unit="capture", weight=lambda k: len(check_chunks[k]),
+                                 shared={"family": family, "done": done, "baseline_paths": frozenset(by_path)}))
+        checks = [c for k in range(len(check_chunks)) for c in checked[k]]
         refusals = [c[2] for c in checks if c[2]]
         if refusals:
             more = f" (and {len(refusals) - 1} more)" if len(refusals) > 1 else ""
@@ -365,6 +402,8 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
     out["file"] = [str(it) if not _is_capture(it) else (it.source or "") for it in items]
     out["newly_scored"] = [h in new_hashes for h in hashes]
     out["in_family"] = out["in_family"].astype("boolean")
+    # a capture reading thicker than its baseline: its loss estimate is clipped to 0 %, never silently
+    out["negative_apparent_loss"] = has_negative_loss(out["mismatch_reasons"])
     cols = list(SCORE_OUTPUT_COLUMNS) + [c for c in _EXTRA_COLUMNS if c not in SCORE_OUTPUT_COLUMNS]
     for c in cols:
         if c not in out:

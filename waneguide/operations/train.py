@@ -34,7 +34,7 @@ __all__ = ["train_and_register"]
 
 def train_and_register(family, campaign_dir, out_dir, *, measured_csv=None, tracking_uri: str | None = None,
                        random_state=0, progress: bool = True, config: TrainConfig | None = None, track: bool = True,
-                       shift_study: bool = True, shift_cases: int = 120, n_jobs: int = 1) -> TrainResult:
+                       shift_study: bool = True, shift_cases: int | None = None, n_jobs: int = 1) -> TrainResult:
     """:func:`~waneguide.training.pipeline.train_model`, then the MLflow run and the registered version.
 
     Parameters are those of ``train_model``, plus ``tracking_uri`` (default
