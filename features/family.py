@@ -40,6 +40,7 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from waneguide.core.errors import InputError, MissingInputError
+from waneguide.features._family_memory import campaign_memory_bytes, chunk_memory_bytes
 from waneguide.features.materials import Material, get_material, material_from_mapping
 from waneguide.features.windows import mode_windows, samples_needed
 
@@ -56,16 +57,27 @@ FAMILY_SCHEMA_VERSION = 1
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True, validate_default=True)
+    # allow_inf_nan=False: every float field (pairs too) refuses inf and nan ("Input should be a finite number")
+    model_config = ConfigDict(extra="forbid", frozen=True, validate_default=True, allow_inf_nan=False)
+
+
+#: Largest magnitude of a level or gain in dB: 10**(300/20) = 1e15 is beyond any amplitude ratio a
+#: rig measures (a 16-bit digitiser spans 96 dB) and far inside float64 (10**(x/20) overflows past
+#: ~6,165 dB). A choice of this project, common practice, no source.
+MAX_ABS_DB = 300.0
 
 
 def _range(lo_name: str = "lower", hi_name: str = "upper"):
-    """Validator body for [lower, upper] pairs."""
+    """Validator body for [lower, upper] pairs (before type validation: non-numbers are left to it)."""
 
     def check(v):
-        if len(v) != 2:
-            raise ValueError(f"must be a pair [{lo_name}, {hi_name}]; got {list(v)}")
-        if v[0] > v[1]:
+        if not isinstance(v, (list, tuple)) or len(v) != 2:
+            raise ValueError(f"must be a pair [{lo_name}, {hi_name}]")
+        try:
+            lo, hi = float(v[0]), float(v[1])
+        except (TypeError, ValueError):
+            return tuple(v)  # the float type check names the element at fault
+        if lo > hi:
             raise ValueError(f"lower bound {v[0]} is above upper bound {v[1]}")
         return tuple(v)
 
@@ -190,6 +202,18 @@ class AcquisitionSpec(_Strict):
     counts_scale_v: float | None = Field(default=None, gt=0.0, description="volts per count, when units are counts")
     full_scale: float = Field(default=1.0, gt=0.0, description="ADC rail in amplitude_units")
 
+    @model_validator(mode="after")
+    def _trigger_inside_record(self):
+        # the pre-trigger is part of the record: at or beyond its end no sample follows the trigger
+        pre_samples = self.pretrigger_us * self.sample_rate_mhz
+        if not pre_samples < self.record_length:
+            raise ValueError(
+                f"pretrigger_us ({self.pretrigger_us:g} us = {pre_samples:.6g} samples at {self.sample_rate_mhz:g} MHz) "
+                f"must be shorter than the record (record_length = {self.record_length} samples = "
+                f"{self.record_length / self.sample_rate_mhz:g} us): the trigger must fall inside the record"
+            )
+        return self
+
     @property
     def sample_rate_hz(self) -> float:
         return self.sample_rate_mhz * 1e6
@@ -221,7 +245,7 @@ class DomainSpec(_Strict):
     """What the simulated campaign spans."""
 
     max_loss_pct: tuple[float, float] = (0.0, 50.0)
-    patch_length_mm: tuple[float, float] = (5.0, 150.0)
+    patch_length_mm: tuple[float, float] = (5.0, 150.0)  # at most 20 m, the longest flange of the schema
     shapes: tuple[Literal["flat", "pit", "rough"], ...] = ("flat", "pit", "rough")
     sides: tuple[Literal["one", "two"], ...] = ("one", "two")
     max_patches: int = Field(default=2, ge=1, le=8)
@@ -230,7 +254,8 @@ class DomainSpec(_Strict):
     snr_db: tuple[float, float] = (20.0, 45.0)
     coupling_db: tuple[float, float] = (-3.0, 3.0)
     temperature_c: tuple[float, float] = (-10.0, 50.0)
-    jitter_ns: float = Field(default=5.0, ge=0.0)
+    jitter_ns: float = Field(default=5.0, ge=0.0, le=10_000.0,
+                             description="trigger jitter; 10 us at most, three orders above a digitiser's ns")
     attenuation_db_per_m: tuple[float, float] = (0.5, 3.0)
     echo_reflection: tuple[float, float] = (0.05, 0.4)
     coupling_drift_db: tuple[float, float] = Field(
@@ -257,8 +282,8 @@ class DomainSpec(_Strict):
         lo, hi = self.position_fraction
         if lo < 0 or hi > 1:
             raise ValueError(f"position_fraction must lie within [0, 1]; got [{lo}, {hi}]")
-        if self.patch_length_mm[0] <= 0:
-            raise ValueError(f"patch_length_mm must be positive; got {list(self.patch_length_mm)}")
+        if self.patch_length_mm[0] <= 0 or self.patch_length_mm[1] > 20_000.0:
+            raise ValueError(f"patch_length_mm must lie within (0, 20000] mm; got {list(self.patch_length_mm)}")
         if not self.shapes or not self.sides:
             raise ValueError("shapes and sides must each list at least one entry")
         if self.attenuation_db_per_m[0] < 0:
@@ -266,6 +291,10 @@ class DomainSpec(_Strict):
         lo, hi = self.echo_reflection
         if lo < 0 or hi > 1:
             raise ValueError(f"echo_reflection must lie within [0, 1]; got [{lo}, {hi}]")
+        for name in ("snr_db", "coupling_db", "coupling_drift_db", "crosstalk_db", "ringing_db", "attenuation_db_per_m"):
+            lo, hi = getattr(self, name)
+            if max(abs(lo), abs(hi)) > MAX_ABS_DB:
+                raise ValueError(f"{name} must lie within [-{MAX_ABS_DB:g}, {MAX_ABS_DB:g}] dB; got [{lo:g}, {hi:g}]")
         return self
 
 
@@ -322,7 +351,7 @@ class Family(_Strict):
                 f"[{env.min_temperature_c:g}, {env.max_temperature_c:g}] degC"
             )
         mat = self.material.build()
-        for t in (env.min_temperature_c, env.max_temperature_c):
+        for t in (env.min_temperature_c, env.max_temperature_c, env.reference_temperature_c):
             mat.check_temperature(t)
         if self.domain.segment_mm > p.transducer_spacing_mm / 4:
             raise ValueError(
@@ -354,6 +383,15 @@ class Family(_Strict):
             f"The record needs at least {need} samples: set record_length = {suggest} (or any value >= {need}), "
             "or shorten the path."
         )
+
+    # -- memory of a simulated campaign, estimated before any work (features._family_memory) --
+    def campaign_chunk_memory_bytes(self, chunk_size: int, *, n_receivers: int = 1) -> int:
+        """Peak bytes of simulating one chunk of ``chunk_size`` cases (``n_receivers`` records per case)."""
+        return chunk_memory_bytes(self, chunk_size, n_receivers=n_receivers)
+
+    def campaign_memory_bytes(self, n_cases: int, *, chunk_size: int, n_workers: int = 1, n_receivers: int = 1) -> int:
+        """Peak bytes of a campaign: case tables plus the larger of the model build and ``n_workers`` chunks."""
+        return campaign_memory_bytes(self, n_cases, chunk_size=chunk_size, n_workers=n_workers, n_receivers=n_receivers)
 
     # -- conveniences ------------------------------------------------------------
     @property

@@ -1,17 +1,24 @@
-"""Family schema: strict validation, SI properties, fingerprint, the invented demo families."""
+"""Family schema: strict validation, SI properties, fingerprint, the invented demo families, campaign memory."""
 from __future__ import annotations
 
 import copy
+import math
 import re
 import tomllib
+import tracemalloc
 
 import pytest
 
 from waneguide.core.errors import InputError, MissingInputError
 from waneguide.features.dispersion import fundamental_dispersion
 from waneguide.features.extractor import FeatureExtractor
+from waneguide.features._family_memory import model_memory_bytes, synthesis_size
 from waneguide.features.family import family_from_mapping, load_family
 from waneguide.features.windows import samples_needed
+from waneguide.simulation._chunk import simulate_chunk
+from waneguide.simulation._plan import plan_campaign
+from waneguide.simulation._tables import _build_tables, cached_tables
+from waneguide.simulation.forward import ForwardModel
 from tests.conftest import FAMILY_FB2, FAMILY_ST3
 
 
@@ -152,3 +159,109 @@ def test_transducer_section_is_optional():
     fam = family_from_mapping(data)
     assert fam.transducer.quality_factor == pytest.approx(1.5)
     assert fam.transducer.aperture == "disc"
+
+
+@pytest.mark.parametrize(
+    "section, key, value, needle",
+    [
+        ("domain", "jitter_ns", math.inf, "domain.jitter_ns: Input should be a finite number; got inf"),
+        ("acquisition", "full_scale", math.inf, "acquisition.full_scale: Input should be a finite number; got inf"),
+        ("domain", "snr_db", [20.0, math.inf], "domain.snr_db.1: Input should be a finite number; got inf"),
+        ("domain", "snr_db", [math.nan, 45.0], "domain.snr_db.0: Input should be a finite number; got nan"),
+        ("acquisition", "pretrigger_us", math.inf, "acquisition.pretrigger_us: Input should be a finite number"),
+        ("acquisition", "pretrigger_us", 1e300, "pretrigger_us (1e+300 us = 1e+301 samples at 10 MHz) must be "
+                                                "shorter than the record (record_length = 8192 samples"),
+        ("environment", "reference_temperature_c", math.inf, "environment.reference_temperature_c: Input should be a "
+                                                             "finite number"),
+        ("transducer", "quality_factor", math.nan, "transducer.quality_factor: Input should be a finite number"),
+        ("domain", "coupling_db", [-1e300, 1e300], "coupling_db must lie within [-300, 300] dB"),
+        ("domain", "patch_length_mm", [5.0, 1e300], "patch_length_mm must lie within (0, 20000] mm"),
+        ("domain", "jitter_ns", 1e300, "domain.jitter_ns: Input should be less than or equal to 10000"),
+        ("domain", "snr_db", ["a", 1.0], "domain.snr_db.0: Input should be a valid number"),
+    ],
+)
+def test_non_finite_and_overflowing_values_are_refused_naming_the_field(section, key, value, needle):
+    # each used to be accepted (a "complete" campaign of NaN samples for full_scale = inf) or to end in a
+    # traceback (OverflowError for pretrigger_us = inf, TypeError for a text element of a pair)
+    data = copy.deepcopy(_raw())
+    data[section][key] = value
+    with pytest.raises(InputError) as info:
+        family_from_mapping(data, where="fam.toml")
+    assert needle in str(info.value)
+    assert str(info.value).startswith("fam.toml: ")
+
+
+def test_toml_inf_and_nan_literals_are_refused(tmp_path):
+    text = FAMILY_FB2.read_text()
+    for line, value in (("jitter_ns = 5.0", "inf"), ("full_scale = 1.0", "nan"), ("snr_db = [20.0, 45.0]", "[20.0, inf]")):
+        assert line in text
+        path = tmp_path / "fam.toml"
+        path.write_text(text.replace(line, line.split(" = ")[0] + " = " + value))
+        with pytest.raises(InputError, match=re.escape(line.split(" = ")[0]) + r".*finite number"):
+            load_family(path)
+
+
+def _with_acquisition(family, **update):
+    data = family.model_dump(mode="json")
+    data["acquisition"].update(update)
+    return family_from_mapping(data)
+
+
+def test_synthesis_size_estimate_matches_the_forward_model(family_fb2):
+    # the estimate runs before any simulation; it must find the band and FFT length the synthesis uses.
+    # record_length 2200 (above the 2153 needed) makes the FFT longer than the record (end echoes)
+    for fam in (family_fb2, _with_acquisition(family_fb2, record_length=2200)):
+        n_fft, bins = synthesis_size(fam)
+        tables = cached_tables(fam, 128)
+        assert bins == tables.freq_hz.size
+        # the synthesis rounds its FFT up to a fast length: within 1 % (regression value of this code: 0.2 %)
+        assert tables.n_fft == pytest.approx(n_fft, rel=0.01)
+        assert n_fft >= fam.acquisition.record_length
+
+
+def test_memory_estimates_bound_the_measured_peaks(family_fb2):
+    # tracemalloc peaks (numpy reports its buffers to it) of the two big steps of a campaign, against the
+    # estimate: the estimate must not be below the peak, nor more than 1.6x above it (a guard that refuses
+    # feasible campaigns is no better than none; 1.6 is the baseline share (1 + 1/states) with margin:
+    # common practice, no source)
+    fam = _with_acquisition(family_fb2, record_length=2200)  # not in the table cache of this process
+    tracemalloc.start()
+    try:
+        _build_tables(fam, 128)
+        model_peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    model_est = model_memory_bytes(fam)
+    assert model_peak <= model_est <= 1.6 * model_peak, (model_peak, model_est)
+    fm = ForwardModel(family_fb2)
+    plan = plan_campaign(family_fb2, 64, seed=0)
+    simulate_chunk(fm, plan.iloc[:2], 0)  # first-use allocations outside the measurement
+    tracemalloc.start()
+    try:
+        simulate_chunk(fm, plan, 0)
+        chunk_peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    chunk_est = family_fb2.campaign_chunk_memory_bytes(64)
+    assert chunk_peak <= chunk_est <= 1.6 * chunk_peak, (chunk_peak, chunk_est)
+
+
+def test_campaign_memory_estimate_flags_the_largest_record_and_a_billion_cases(family_fb2):
+    # demo-fb2 at the largest record_length the schema allows (2**20): 20,748 band bins, so building the
+    # forward model's tables alone needs ~22.6 GB (8,500 bytes per bin and thickness node, 128 nodes):
+    # more than this 23 GB machine has free beside anything else; the estimate says so before any work
+    big = _with_acquisition(family_fb2, record_length=2**20)
+    assert synthesis_size(big) == (2**20, 20_748)  # regression values of this code
+    assert model_memory_bytes(big) == 8_500 * 20_748 * 128
+    assert big.campaign_memory_bytes(1000, chunk_size=512) > 20e9
+    # the demo's default campaign: model build ~170 MB dominates (regression value of this code)
+    default = family_fb2.campaign_memory_bytes(2000, chunk_size=512)
+    assert 150e6 < default < 250e6
+    # --cases 1000000000: the case tables alone are 2 KiB x 1e9 = 2 TB
+    assert family_fb2.campaign_memory_bytes(10**9, chunk_size=512) > 2e12
+    # chunk memory is linear in cases and receivers (the per-record cost times the records)
+    one = family_fb2.campaign_chunk_memory_bytes(100)
+    assert family_fb2.campaign_chunk_memory_bytes(100, n_receivers=3) == pytest.approx(3 * one, rel=1e-6)
+    assert family_fb2.campaign_chunk_memory_bytes(200) == pytest.approx(2 * one, rel=1e-6)
+    with pytest.raises(ValueError, match="chunk_size must be a positive whole number"):
+        family_fb2.campaign_chunk_memory_bytes(0)

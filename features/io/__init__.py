@@ -10,7 +10,9 @@
 ==============  ==========================================================
 
 The metadata set and the unit conversion are shared (:mod:`features.io._meta`);
-the full description is docs/capture-format.md. Errors are the named classes of
+the full description is docs/capture-format.md. Every reader checks what a file declares
+(sizes, shapes, lengths) against the ceilings of :mod:`features.io._bounds` before it reads
+(:data:`MAX_CAPTURE_SAMPLES` samples per capture). Errors are the named classes of
 :mod:`features.io.errors`, all subclasses of :class:`waneguide.core.errors.InputError`;
 a file or folder that does not exist raises :class:`waneguide.core.errors.MissingInputError`.
 """
@@ -22,10 +24,12 @@ from typing import Iterable
 
 from waneguide.core.errors import InputError, MissingInputError
 from waneguide.features.capture import Capture
+from waneguide.features.io._bounds import MAX_CAPTURE_SAMPLES
 from waneguide.features.io._meta import UNITS, from_volts, to_volts
 from waneguide.features.io.csv_format import read_csv_capture, write_csv_capture
 from waneguide.features.io.errors import (
     CaptureFileError,
+    CaptureTooLargeError,
     CorruptFileError,
     EmptyDataError,
     InvalidFieldError,
@@ -40,8 +44,10 @@ from waneguide.features.io.npz_format import read_npz_capture, write_npz_capture
 
 __all__ = [
     "CAPTURE_SUFFIXES",
+    "MAX_CAPTURE_SAMPLES",
     "UNITS",
     "CaptureFileError",
+    "CaptureTooLargeError",
     "CorruptFileError",
     "EmptyDataError",
     "InvalidFieldError",

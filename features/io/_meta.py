@@ -18,6 +18,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from waneguide.features.capture import CAPTURE_METADATA_KEYS, Capture
+from waneguide.features.io._bounds import check_metadata_count, check_metadata_value
 from waneguide.features.io.errors import EmptyDataError, InvalidFieldError, MissingFieldError, UnknownUnitsError
 
 __all__ = ["UNITS", "to_volts", "from_volts", "capture_from_fields", "fields_from_capture"]
@@ -62,11 +63,21 @@ def from_volts(amplitude_v: Any, units: str, counts_scale_v: float | None = None
     return out
 
 
+def _decode(value: bytes, key: str, where: str) -> str:
+    try:
+        return value.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InvalidFieldError(
+            f"{where}: metadata {key!r} is not UTF-8 text (byte {exc.start} cannot be decoded); store it as "
+            "plain text or a number."
+        ) from None
+
+
 def _as_float(value: Any, key: str, where: str) -> float | None:
     if value is None:
         return None
     if isinstance(value, (bytes, np.bytes_)):
-        value = value.decode()
+        value = _decode(value, key, where)
     if isinstance(value, str):
         text = value.strip()
         if text == "" or text.lower() in ("none", "nan", "null"):
@@ -100,11 +111,11 @@ def _not_a_number(where: str, key: str, value: Any) -> str:
             f"{key} = {_EXAMPLES[key]} (no units or text).")
 
 
-def _as_text(value: Any) -> str | None:
+def _as_text(value: Any, key: str, where: str) -> str | None:
     if value is None:
         return None
     if isinstance(value, (bytes, np.bytes_)):
-        return value.decode()
+        return _decode(value, key, where)
     if isinstance(value, np.ndarray):
         if value.dtype.kind in "US":
             return str(value.item()) if value.size == 1 else "".join(str(v) for v in value.ravel())
@@ -131,8 +142,13 @@ def capture_from_fields(values: Any, meta: Mapping[str, Any], *, where: str) -> 
             "Store one capture per file, as a vector."
         )
     meta = dict(meta)
+    check_metadata_count(where, len(meta))
+    for key, value in meta.items():
+        check_metadata_value(where, str(key), value)
+    path_id = (_as_text(meta.get("path_id"), "path_id", where) or "").strip()
     for key in _REQUIRED:
-        if meta.get(key) is None or (isinstance(meta.get(key), str) and not meta[key].strip()):
+        value = path_id if key == "path_id" else meta.get(key)
+        if value is None or (isinstance(value, str) and not value.strip()):
             hint = {"path_id": "`# path_id = P01`", "sample_rate_hz": "`# sample_rate_hz = 10e6`"}[key]
             raise MissingFieldError(f"{where}: required metadata {key!r} is missing. Add it ({hint}).")
     nums = {k: _as_float(meta.get(k), k, where) for k in _FLOAT_KEYS}
@@ -154,10 +170,10 @@ def capture_from_fields(values: Any, meta: Mapping[str, Any], *, where: str) -> 
                 f"{where}: {key} must be positive; got {nums[key]!r}. Give the real value "
                 f"(e.g. {key} = {_EXAMPLES[key]}) or leave the key out."
             )
-    units = _as_text(meta.get("units")) or "V"
+    units = _as_text(meta.get("units"), "units", where) or "V"
     units = units.strip()
     amplitude_v = to_volts(arr, units, nums["counts_scale_v"], where=where)
-    captured_at = _as_text(meta.get("captured_at"))
+    captured_at = _as_text(meta.get("captured_at"), "captured_at", where)
     if captured_at is not None:
         captured_at = captured_at.strip() or None
     if captured_at is not None:
@@ -172,7 +188,7 @@ def capture_from_fields(values: Any, meta: Mapping[str, Any], *, where: str) -> 
         amplitude_v=amplitude_v,
         sample_rate_hz=fs,
         pretrigger_s=pre,
-        path_id=str(_as_text(meta["path_id"])).strip(),
+        path_id=path_id,
         captured_at=captured_at,
         temperature_c=nums["temperature_c"],
         excitation_khz=nums["excitation_khz"],

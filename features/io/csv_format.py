@@ -23,54 +23,96 @@ Each sample line holds exactly two complete numbers; a line with anything else (
 from __future__ import annotations
 
 import io
+import math
 import os
 import re
+from array import array
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 
 from waneguide.core.atomic import atomic_write_text
 from waneguide.features.capture import Capture
+from waneguide.features.io import _bounds
 from waneguide.features.io._meta import capture_from_fields, fields_from_capture
-from waneguide.features.io.errors import CorruptFileError, EmptyDataError, InvalidFieldError, MissingFieldError, TimeAxisError
+from waneguide.features.io.errors import CaptureTooLargeError, CorruptFileError, EmptyDataError
+from waneguide.features.io.errors import InvalidFieldError, MissingFieldError, TimeAxisError
 
 __all__ = ["read_csv_capture", "write_csv_capture"]
 
 COLUMNS = ("time_s", "amplitude")
 
 
-def _parse_header(lines: list[str], where: str) -> tuple[dict[str, str], int]:
+def _numbered_lines(fh, where: str) -> Iterator[tuple[int, str]]:
+    """(1-based line number, text) of a binary file object, as an editor numbers the lines.
+
+    Split at LF only, a trailing CR dropped; each line decoded as UTF-8 and at most
+    :data:`~waneguide.features.io._bounds.MAX_LINE_BYTES` long (read with a bounded readline,
+    so a file without line breaks is never read whole).
+    """
+    limit = _bounds.MAX_LINE_BYTES
+    offset = 0
+    no = 0
+    while True:
+        raw = fh.readline(limit + 1)
+        if not raw:
+            return
+        no += 1
+        if len(raw) > limit:
+            raise CaptureTooLargeError(
+                f"{where}: line {no} is longer than {limit:,} bytes (a sample line holds two numbers, a header "
+                f"line one `# key = value`); nothing after it was read. Break the file into lines."
+            )
+        try:
+            text = raw.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            raise CorruptFileError(
+                f"{where}: line {no}: not UTF-8 text (byte {offset + exc.start} of the file cannot be decoded); a CSV "
+                "capture is plain UTF-8 text. Export the capture as text, or use .mat, .h5 or .npz."
+            ) from None
+        offset += len(raw)
+        if text.endswith("\n"):
+            text = text[:-1]
+        if text.endswith("\r"):
+            text = text[:-1]
+        yield no, text
+
+
+def _parse_header(lines: Iterator[tuple[int, str]], where: str) -> tuple[dict[str, str], tuple[int, str] | None]:
+    """The ``# key = value`` lines, and the first other non-blank line (None at the end of the file)."""
     meta: dict[str, str] = {}
-    i = 0
-    for i, raw in enumerate(lines):
+    for no, raw in lines:
         line = raw.strip()
         if not line:
             continue
         if not line.startswith("#"):
-            return meta, i
+            return meta, (no, raw)
         body = line[1:].strip()
         if not body:
             continue
         if "=" not in body:
             raise InvalidFieldError(
-                f"{where}: line {i + 1}: header lines must read `# key = value`; got {line!r}. "
+                f"{where}: line {no}: header lines must read `# key = value`; got {line!r}. "
                 "Write it as, e.g., `# path_id = P01`, or drop the `#` line."
             )
         key, value = (s.strip() for s in body.split("=", 1))
         if not key.replace("_", "").isalnum():
             raise InvalidFieldError(
-                f"{where}: line {i + 1}: header key {key!r} must be a plain name (letters, digits, `_`); "
+                f"{where}: line {no}: header key {key!r} must be a plain name (letters, digits, `_`); "
                 f"got it in {line!r}. Rename the key, e.g. `# temperature_c = 21.5`."
             )
         if len(value) >= 2 and value[0] == value[-1] and value[0] in "\"'":
             value = value[1:-1]
         if key in meta:
             raise InvalidFieldError(
-                f"{where}: line {i + 1}: header key {key!r} is given twice (each key once); got {line!r}. "
+                f"{where}: line {no}: header key {key!r} is given twice (each key once); got {line!r}. "
                 "Keep one of the two lines."
             )
+        _bounds.check_metadata_value(f"{where}: line {no}", key, value)
         meta[key] = value
-    return meta, len(lines)
+        _bounds.check_metadata_count(where, len(meta))
+    return meta, None
 
 
 #: A complete number as a CSV field: decimal with optional exponent, or nan / inf (read, then
@@ -81,20 +123,20 @@ _ACCEPTED = ("accepted: two complete numbers per line, `time_s,amplitude`, each 
              "units or digitiser codes)")
 
 
-def _parse_rows(lines: list[str], first: int, where: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(time_s, amplitude, 1-based file line of each sample) from the data lines ``lines[first:]``.
+def _parse_rows(lines: Iterator[tuple[int, str]], where: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(time_s, amplitude, 1-based file line of each sample) from the remaining (data) lines.
 
-    Blank lines are skipped; every other line must be exactly two complete numbers.
+    Blank lines are skipped; every other line must be exactly two complete numbers. More than
+    :data:`~waneguide.features.io._bounds.MAX_CAPTURE_SAMPLES` sample lines are refused at the
+    first line past the ceiling (8 bytes per number are held, nothing else).
     """
-    times: list[float] = []
-    amps: list[float] = []
-    line_no: list[int] = []
-    for i in range(first, len(lines)):
-        raw = lines[i]
+    limit = _bounds.MAX_CAPTURE_SAMPLES
+    times, amps, line_no = array("d"), array("d"), array("q")
+    for no, raw in lines:
         if not raw.strip():
             continue
         fields = raw.split(",")
-        where_line = f"{where}: line {i + 1}"
+        where_line = f"{where}: line {no}"
         if len(fields) != 2:
             raise CorruptFileError(
                 f"{where_line}: a sample line must hold 2 comma-separated fields (time_s,amplitude); got "
@@ -109,52 +151,55 @@ def _parse_rows(lines: list[str], first: int, where: str) -> tuple[np.ndarray, n
                     f"{_ACCEPTED}. Correct or remove that line."
                 )
             values.append(float(text))
+        if len(times) >= limit:
+            raise CaptureTooLargeError(
+                f"{where_line}: more than {limit:,} sample lines, the ceiling of samples per capture; the rest "
+                f"of the file was not read. Store one record of at most {limit:,} samples per file."
+            )
         times.append(values[0])
         amps.append(values[1])
-        line_no.append(i + 1)
-    return np.array(times, dtype=float), np.array(amps, dtype=float), np.array(line_no, dtype=int)
-
-
-def _split_lines(text: str) -> list[str]:
-    """Lines as an editor numbers them: split at LF only, a trailing CR dropped."""
-    lines = text.split("\n")
-    if lines and lines[-1] == "":
-        lines.pop()
-    return [ln[:-1] if ln.endswith("\r") else ln for ln in lines]
+        line_no.append(no)
+    return (np.frombuffer(times, dtype=float), np.frombuffer(amps, dtype=float),
+            np.frombuffer(line_no, dtype=np.int64))
 
 
 def read_csv_capture(path: str | os.PathLike) -> Capture:
     """Read one CSV capture (see module docstring); amplitudes converted to volts.
 
-    Every error names the file, the 1-based line of the file, the offending text and what is accepted.
+    The file is streamed line by line, within the ceilings of :mod:`features.io._bounds`
+    (file bytes, line length, sample lines, metadata). Every error names the file, the
+    1-based line of the file, the offending text and what is accepted.
     """
     where = str(path)
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except UnicodeDecodeError as exc:
-        raise CorruptFileError(
-            f"{where}: not a UTF-8 text file (byte {exc.start} cannot be decoded); a CSV capture is plain "
-            "UTF-8 text. Export the capture as text, or use .mat, .h5 or .npz."
-        ) from None
-    lines = _split_lines(text)
-    meta, start = _parse_header(lines, where)
-    if start >= len(lines):
-        raise EmptyDataError(
-            f"{where}: no column header and no samples after the `#` header lines; expected the line "
-            "`time_s,amplitude` and then one sample per line."
-        )
-    header = [c.strip() for c in lines[start].split(",")]
-    if tuple(header) != COLUMNS:
-        missing = [c for c in COLUMNS if c not in header]
-        raise MissingFieldError(
-            f"{where}: line {start + 1}: the column header must be exactly `time_s,amplitude`; got "
-            f"{lines[start].strip()!r}" + (f" (missing {', '.join(missing)})." if missing else ".")
-        )
-    t, a, line_no = _parse_rows(lines, start + 1, where)
+    _bounds.check_file_size(path, text=True)
+    with open(path, "rb") as fh:
+        lines = _numbered_lines(fh, where)
+        meta, column_line = _parse_header(lines, where)
+        if column_line is None:
+            raise EmptyDataError(
+                f"{where}: no column header and no samples after the `#` header lines; expected the line "
+                "`time_s,amplitude` and then one sample per line."
+            )
+        start, column_text = column_line
+        header = [c.strip() for c in column_text.split(",")]
+        if tuple(header) != COLUMNS:
+            missing = [c for c in COLUMNS if c not in header]
+            raise MissingFieldError(
+                f"{where}: line {start}: the column header must be exactly `time_s,amplitude`; got "
+                f"{column_text.strip()!r}" + (f" (missing {', '.join(missing)})." if missing else ".")
+            )
+        t, a, line_no = _parse_rows(lines, where)
     if t.size == 0:
-        raise EmptyDataError(f"{where}: the file has a column header (line {start + 1}) but no samples after it.")
+        raise EmptyDataError(f"{where}: the file has a column header (line {start}) but no samples after it.")
     if t.size < 2:
         raise EmptyDataError(f"{where}: need at least 2 samples; got {t.size} (line {line_no[0]}).")
+    with np.errstate(all="ignore"):  # differences of huge finite times overflow to inf: refused below
+        _check_time_axis(t, line_no, meta, where)
+    return capture_from_fields(a, meta, where=where)
+
+
+def _check_time_axis(t: np.ndarray, line_no: np.ndarray, meta: dict[str, str], where: str) -> None:
+    """Uniform, finite time column that agrees with the header; fills in a missing rate and pre-trigger."""
     bad_t = np.flatnonzero(~np.isfinite(t))
     if bad_t.size:
         j = int(bad_t[0])
@@ -164,8 +209,8 @@ def read_csv_capture(path: str | os.PathLike) -> Capture:
         )
     dt = np.diff(t)
     step = float(np.median(dt))
-    off = np.abs(dt - step) > 1e-3 * step
-    if step <= 0 or off.any():
+    off = ~(np.abs(dt - step) <= 1e-3 * step)
+    if not step > 0 or not math.isfinite(step) or off.any():
         j = int(np.flatnonzero(off)[0]) if off.any() else 0
         raise TimeAxisError(
             f"{where}: line {line_no[j + 1]}: time_s must increase in equal steps (uniform sampling, within "
@@ -198,14 +243,13 @@ def read_csv_capture(path: str | os.PathLike) -> Capture:
                 f"{where}: pretrigger_s must be a number of seconds; got {meta['pretrigger_s']!r}. "
                 "Write it as `# pretrigger_s = 2e-05`."
             ) from None
-        if fs > 0 and abs(t[0] + pre) > 1e-2 / fs:
+        if fs > 0 and not abs(t[0] + pre) <= 1e-2 / fs:
             raise TimeAxisError(
                 f"{where}: line {line_no[0]}: header pretrigger_s = {pre:g} disagrees with the first "
                 f"time_s = {t[0]:g} (the first sample must be at -pretrigger_s). Fix one of them."
             )
     else:
         meta["pretrigger_s"] = repr(float(-t[0]))
-    return capture_from_fields(a, meta, where=where)
 
 
 def _fmt(value) -> str:

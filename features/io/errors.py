@@ -19,6 +19,7 @@ __all__ = [
     "UnknownUnitsError",
     "TimeAxisError",
     "EmptyDataError",
+    "CaptureTooLargeError",
 ]
 
 
@@ -68,3 +69,9 @@ class EmptyDataError(CaptureFileError):
     """The file holds no samples, or the amplitude is not a 1-D numeric array."""
 
     code = "empty_data"
+
+
+class CaptureTooLargeError(CaptureFileError):
+    """The file, or an array it declares, is above a reader's ceiling (features.io._bounds)."""
+
+    code = "too_large"

@@ -1,7 +1,8 @@
 """HDF5 captures (``.h5`` / ``.hdf5``): dataset ``/amplitude``, metadata as root attributes.
 
 Text attributes are UTF-8 strings, numbers are float64 scalars. An optional
-``/time_s`` dataset is ignored (the time axis follows from the metadata).
+``/time_s`` dataset is ignored (the time axis follows from the metadata), never read.
+Sizes are checked before reading (:mod:`features.io._bounds`, :mod:`features.io._h5`).
 """
 from __future__ import annotations
 
@@ -13,6 +14,8 @@ import numpy as np
 
 from waneguide.core.atomic import atomic_path
 from waneguide.features.capture import Capture
+from waneguide.features.io import _bounds
+from waneguide.features.io._h5 import H5_ERRORS, checked_dataset, h5_guard, read_attrs, read_dataset
 from waneguide.features.io._meta import capture_from_fields, fields_from_capture
 from waneguide.features.io.errors import CorruptFileError, MissingFieldError
 
@@ -20,23 +23,29 @@ __all__ = ["read_hdf5_capture", "write_hdf5_capture"]
 
 
 def read_hdf5_capture(path: str | os.PathLike) -> Capture:
-    """Read an HDF5 capture; amplitudes converted to volts."""
+    """Read an HDF5 capture; amplitudes converted to volts.
+
+    Declarations are checked before anything is read (:mod:`features.io._h5`): the
+    amplitude's shape and type, its storage and chunks, and every attribute.
+    """
     where = str(path)
+    _bounds.check_file_size(path, text=False)
     try:
         fh = h5py.File(path, "r")
-    except OSError as exc:
+    except H5_ERRORS as exc:
         raise CorruptFileError(
             f"{where}: not a readable HDF5 file ({exc}); accepted: an HDF5 file with an '/amplitude' "
             "dataset. Write the capture again, or export it as .csv, .mat or .npz."
         ) from None
-    with fh:
-        if "amplitude" not in fh or not isinstance(fh["amplitude"], h5py.Dataset):
+    with fh, h5_guard(where, "HDF5 capture"):
+        ds = checked_dataset(fh, "amplitude", where)
+        if ds is None:
             raise MissingFieldError(
                 f"{where}: the file has no '/amplitude' dataset (required: the samples, 1-D); found "
-                f"{sorted(fh.keys())}. Store the samples as the dataset `amplitude`."
+                f"{sorted(fh.keys())[:20]}. Store the samples as the dataset `amplitude`."
             )
-        values = fh["amplitude"][()]
-        meta = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in fh.attrs.items()}
+        meta = read_attrs(fh, where)
+        values = read_dataset(ds, "amplitude", where, samples=True)
     return capture_from_fields(values, meta, where=where)
 
 

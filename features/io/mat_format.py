@@ -10,42 +10,123 @@ HDF5-based; layout details recalled from memory of files MATLAB writes).
 """
 from __future__ import annotations
 
+import math
 import os
+import struct
 import time
+import zlib
 from pathlib import Path
 
 import h5py
 import numpy as np
 import scipy.io
-from scipy.io.matlab import MatReadError
+from scipy.io.matlab import MatReadError, matfile_version
 
 from waneguide.core.atomic import atomic_path
-from waneguide.core.errors import InputError
+from waneguide.core.errors import InputError, WaneguideError
 from waneguide.features.capture import Capture
+from waneguide.features.io import _bounds
+from waneguide.features.io._h5 import H5_ERRORS, checked_dataset, h5_guard, read_attrs, read_dataset
 from waneguide.features.io._meta import capture_from_fields, fields_from_capture
-from waneguide.features.io.errors import CorruptFileError, InvalidFieldError, MissingFieldError
+from waneguide.features.io.errors import CaptureTooLargeError, CorruptFileError, InvalidFieldError, MissingFieldError
 
 __all__ = ["read_mat_capture", "write_mat_capture"]
 
 
+#: What scipy.io raises on a damaged file.
+_MAT_ERRORS = (MatReadError, ValueError, TypeError, OSError, IndexError, EOFError, KeyError, OverflowError,
+               AttributeError, RuntimeError, NotImplementedError, UnicodeError, zlib.error, struct.error)
+#: MATLAB classes a capture variable may have (numbers, logicals, text).
+_PLAIN_CLASSES = {"double", "single", "int8", "uint8", "int16", "uint16", "int32", "uint32", "int64", "uint64",
+                  "char", "logical"}
+_MI_COMPRESSED = 15  # data type of a compressed element (MathWorks, "MAT-File Format", Table 1-1)
+
+
+def _corrupt(where: str, exc: BaseException) -> CorruptFileError:
+    return CorruptFileError(
+        f"{where}: not a readable MATLAB .mat file ({type(exc).__name__}: {str(exc)[:200]}); accepted: MATLAB v5 "
+        "or v7.3 files written by `save`. Save the capture again, or export it as .csv, .h5 or .npz."
+    )
+
+
+def _check_inflated_size(path, where: str) -> None:
+    """Inflate every compressed element of a v5 file in bounded pieces, refusing past the binary ceiling.
+
+    scipy sizes its buffers by the tags inside a compressed element, so a small file whose
+    stream inflates without end (a compression bomb) is refused here, before scipy reads it.
+    """
+    limit = _bounds.MAX_BINARY_BYTES
+    total = 0
+    with open(path, "rb") as fh:
+        head = fh.read(128)
+        endian = "<" if head[126:128] == b"IM" else ">"
+        while len(tag := fh.read(8)) == 8:
+            mdtype, nbytes = struct.unpack(endian + "II", tag)
+            if mdtype != _MI_COMPRESSED:
+                fh.seek(nbytes, os.SEEK_CUR)
+                continue
+            d = zlib.decompressobj()
+            left = nbytes
+            while left > 0 and not d.eof:
+                piece = fh.read(min(left, 2**20))
+                if not piece:
+                    break
+                left -= len(piece)
+                while piece and not d.eof:
+                    total += len(d.decompress(piece, 2**20))
+                    piece = d.unconsumed_tail
+                    if total > limit:
+                        raise CaptureTooLargeError(
+                            f"{where}: the compressed variables inflate past {limit // 2**20} MiB, the ceiling of a "
+                            "binary capture (a compression bomb or a damaged file); nothing was read. Save the "
+                            "capture again (one record per file)."
+                        )
+            fh.seek(left, os.SEEK_CUR)
+
+
+def _check_v5_headers(path, where: str) -> list[str]:
+    """Variable names to read, after checking every variable header (scipy.io.whosmat) against the ceilings."""
+    variables = scipy.io.whosmat(path)
+    _bounds.check_metadata_count(where, len(variables))
+    names = []
+    for name, shape, cls in variables:
+        if name == "time_s":
+            continue  # ignored, never read
+        if cls not in _PLAIN_CLASSES:
+            raise InvalidFieldError(
+                f"{where}: variable {name!r} must be a number or text; got a MATLAB {cls} (a cell array, struct, "
+                "sparse matrix or object). Store it as a full numeric array or a char array."
+            )
+        if name == "amplitude":
+            _bounds.check_samples(where, name, shape)
+        else:
+            _bounds.check_metadata_size(where, name, math.prod(shape))
+        names.append(name)
+    return names
+
+
 def _read_v5(path, where):
     try:
-        data = scipy.io.loadmat(path, squeeze_me=True, chars_as_strings=True)
-    except NotImplementedError:
-        return None  # v7.3: HDF5
-    except (MatReadError, ValueError, TypeError, OSError, IndexError, EOFError) as exc:
-        raise CorruptFileError(
-            f"{where}: not a readable MATLAB .mat file ({exc}); accepted: MATLAB v5 or v7.3 files written "
-            "by `save`. Save the capture again, or export it as .csv, .h5 or .npz."
+        _check_inflated_size(path, where)  # first: scipy.io.whosmat itself inflates what a tag claims
+        names = _check_v5_headers(path, where)
+        data = scipy.io.loadmat(path, squeeze_me=True, chars_as_strings=True, variable_names=names)
+    except WaneguideError:
+        raise
+    except MemoryError:
+        raise CaptureTooLargeError(
+            f"{where}: a variable declares more memory than can be given (its data tag disagrees with its "
+            "header); nothing was kept. Save the capture again."
         ) from None
+    except _MAT_ERRORS as exc:
+        raise _corrupt(where, exc) from None
     return {k: v for k, v in data.items() if not k.startswith("__")}
 
 
-def _decode_h5(node):
-    if not isinstance(node, h5py.Dataset):
-        return None
-    value = node[()]
-    cls = node.attrs.get("MATLAB_class", b"")
+def _decode_h5(node, name, where):
+    if node is None:
+        return None  # a group (a MATLAB struct): not a capture variable
+    value = read_dataset(node, name, where, samples=name == "amplitude")
+    cls = read_attrs(node, where).get("MATLAB_class", b"")
     if isinstance(cls, bytes):
         cls = cls.decode()
     if cls == "char":
@@ -60,25 +141,35 @@ def _decode_h5(node):
 def _read_v73(path, where):
     try:
         fh = h5py.File(path, "r")
-    except OSError as exc:
+    except H5_ERRORS as exc:
         raise CorruptFileError(
             f"{where}: not a readable MATLAB v7.3 (HDF5) file ({exc}); accepted: MATLAB v5 or v7.3 files "
             "written by `save`. Save the capture again, or export it as .csv, .h5 or .npz."
         ) from None
-    with fh:
-        return {k: _decode_h5(fh[k]) for k in fh.keys() if not k.startswith("#")}
+    with fh, h5_guard(where, "MATLAB v7.3 (HDF5) file"):
+        names = [k for k in fh.keys() if not k.startswith("#") and k != "time_s"]
+        _bounds.check_metadata_count(where, len(names))
+        return {k: _decode_h5(checked_dataset(fh, k, where), k, where) for k in names}
 
 
 def read_mat_capture(path: str | os.PathLike) -> Capture:
-    """Read a v5 or v7.3 ``.mat`` capture; amplitudes converted to volts."""
+    """Read a v5 or v7.3 ``.mat`` capture; amplitudes converted to volts.
+
+    Declarations are checked before anything is read: v5 variable headers
+    (:func:`scipy.io.whosmat`) and the inflated size of compressed variables; v7.3
+    datasets as for ``.h5`` (:mod:`features.io._h5`).
+    """
     where = str(path)
-    data = _read_v5(path, where)
-    if data is None:
-        data = _read_v73(path, where)
+    _bounds.check_file_size(path, text=False)
+    try:
+        major, _ = matfile_version(path)
+    except _MAT_ERRORS as exc:
+        raise _corrupt(where, exc) from None
+    data = _read_v73(path, where) if major == 2 else _read_v5(path, where)
     if "amplitude" not in data or data["amplitude"] is None:
         raise MissingFieldError(
             f"{where}: the file has no 'amplitude' variable (required: the samples as a vector); found "
-            f"{sorted(data)}. Save the samples as `amplitude`."
+            f"{sorted(data)[:20]}. Save the samples as `amplitude`."
         )
     values = data.pop("amplitude")
     data.pop("time_s", None)
