@@ -26,13 +26,18 @@ from waneguide.simulation._plan import SPECIMEN_DIMS, STATE_DIMS
 from waneguide.simulation.forward import FORWARD_MODEL_VERSION
 from waneguide.simulation.profiles import TRUTH_COLUMNS
 
-__all__ = ["CAMPAIGN_FORMAT_VERSION", "code_version", "chunk_name", "build_manifest", "write_manifest",
+__all__ = ["CAMPAIGN_FORMAT_VERSION", "FIDELITIES", "code_version", "chunk_name", "build_manifest", "write_manifest",
            "read_manifest", "write_npz", "read_chunk", "check_present", "existing_chunk", "write_parquet",
            "digest_error"]
 
 CAMPAIGN_FORMAT_VERSION = 1
 _ZIP_DATE = (1980, 1, 1, 0, 0, 0)
-_MODEL_NOTE = "free-plate S0/A0 modal synthesis; approximations listed in waneguide.simulation.forward"
+#: What made the noise-free waveforms, per fidelity (``--fidelity``).
+FIDELITIES = {
+    "fast": "free-plate S0/A0 modal synthesis; approximations listed in waneguide.simulation.forward",
+    "full": "2-D plane-strain full-wave finite differences (waneguide.simulation.fullwave) with the fast model's "
+            "confounders and noise (waneguide.simulation._fullwave_runs)",
+}
 
 
 def code_version() -> str:
@@ -47,7 +52,8 @@ def chunk_name(k: int) -> str:
 
 
 def build_manifest(family, fm, n_cases: int, seed: int, chunk_size: int, fingerprint: str, status: str,
-                   chunks: list[dict]) -> dict[str, Any]:
+                   chunks: list[dict], *, fidelity: str = "fast", fullwave: dict | None = None) -> dict[str, Any]:
+    """The manifest; ``fullwave``: the full-wave section (setup and calibration) of a ``full`` campaign."""
     n_spec = math.ceil(n_cases / family.domain.states_per_specimen)
     return {
         "format": "waneguide-campaign",
@@ -68,10 +74,13 @@ def build_manifest(family, fm, n_cases: int, seed: int, chunk_size: int, fingerp
         "record_length": fm.n_samples,
         "segment_m": fm.segment_m,
         "n_segments": int(fm.x_m.size),
-        "code_version": {"waneguide": code_version(), "forward_model": FORWARD_MODEL_VERSION},
+        "code_version": {"waneguide": code_version(), "forward_model": FORWARD_MODEL_VERSION,
+                         **({"fullwave": fullwave["fullwave_version"]} if fullwave is not None else {})},
         "sampling": {"method": "scipy.stats.qmc.Sobol, scrambled, first n of 2^m",
                      "specimen_dimensions": list(SPECIMEN_DIMS), "state_dimensions": list(STATE_DIMS)},
-        "model": _MODEL_NOTE,
+        "fidelity": fidelity,
+        "model": FIDELITIES[fidelity],
+        **({"fullwave": fullwave} if fullwave is not None else {}),
         "chunks": chunks,
     }
 

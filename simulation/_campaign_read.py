@@ -28,6 +28,11 @@ from waneguide.simulation.profiles import ThinningProfile
 
 __all__ = ["Campaign", "load_campaign"]
 
+_SIMULATED_WITH = {
+    "fast": "free-plate S0/A0 model (approximations listed in waneguide.simulation.forward)",
+    "full": "full-wave solver (waneguide.simulation.fullwave) and the fast model's confounders and noise",
+}
+
 
 def _from_manifest(key: str, cast, doc: str) -> property:
     return property(lambda self: cast(self.manifest[key]), doc=doc)
@@ -71,13 +76,26 @@ class Campaign:
             f"(mean {c['max_loss_pct'].mean():.1f} %), {int((c['max_loss_pct'] == 0).sum())} pristine state(s)",
             f"  temperature {c['temperature_c'].min():.1f} to {c['temperature_c'].max():.1f} degC, "
             f"SNR {c['snr_db'].min():.1f} to {c['snr_db'].max():.1f} dB",
-            "  simulated with the free-plate S0/A0 model (approximations listed in waneguide.simulation.forward)",
+            f"  simulated with the {_SIMULATED_WITH[self.fidelity]}",
         ]
+        cal = (self.manifest.get("fullwave") or {}).get("calibration")
+        if cal:
+            lines.append(f"  full-wave amplitude scale {cal['amplitude_scale_v_per_unit']:.4g} V per (m/s per N/m) "
+                         f"from a pristine run; S0 / A0 window peaks {cal['s0_peak_full_over_fast']:.2f} / "
+                         f"{cal['a0_peak_full_over_fast']:.2f} x the fast model's")
         if self.run_info is not None:
             ri = self.run_info
             lines.insert(1, f"  {ri['computed_chunks']} chunk(s) computed, {ri['reused_chunks']} kept from an "
                             f"earlier run, {ri['seconds']:.1f} s")
+            if ri.get("runs"):
+                lines.insert(2, f"  {ri['runs']} full-wave run(s), {ri['run_seconds'] / ri['runs']:.2f} s each "
+                                "(cases and baselines)")
         return "\n".join(lines)
+
+    @property
+    def fidelity(self) -> str:
+        """``fast`` (modal synthesis) or ``full`` (full-wave records); campaigns written before it was recorded are fast."""
+        return str(self.manifest.get("fidelity", "fast"))
 
     fingerprint = _from_manifest("campaign_fingerprint", str, "Campaign fingerprint (16 hex digits).")
     family_fingerprint = _from_manifest("family_fingerprint", str, "Fingerprint of the family simulated.")
@@ -131,7 +149,7 @@ class Campaign:
             excitation_khz=exc.centre_frequency_khz,
             cycles=float(exc.cycles),
             units="V",
-            extra={"simulated": True, "role": role, "case_id": str(row["case_id"]),
+            extra={"simulated": True, "fidelity": self.fidelity, "role": role, "case_id": str(row["case_id"]),
                    "specimen_id": str(row["specimen_id"]), "campaign_fingerprint": self.fingerprint,
                    "family": self.family.name, "family_fingerprint": self.family_fingerprint},
         )

@@ -109,6 +109,7 @@ from waneguide.core.errors import InputError
 from waneguide.features.capture import Capture
 from waneguide.features.family import Family
 from waneguide.features.excitation import disc_footprint
+from waneguide.simulation._confound import attenuation_np_per_m, confound_records, render
 from waneguide.simulation._tables import MODES, cached_tables, mode_index, pair_factors
 from waneguide.simulation.profiles import footprint_thickness
 
@@ -306,9 +307,7 @@ class ForwardModel:
         Wn[np.arange(n), jn + 1] += wn * e
 
         f = tb.freq_hz
-        omega = 2 * np.pi * f
-        fc = self.family.excitation.centre_frequency_hz
-        a_np = (att_db / (20 * np.log10(np.e)))[:, None] * (f / fc)[None, :]  # Np/m, (n, F)
+        a_np = attenuation_np_per_m(att_db, f, self.family.excitation.centre_frequency_hz)  # Np/m, (n, F)
         n_paths = len(_PATHS) if echoes else 1
         mode_ids = [mode_index(m) for m in modes]
         # active paths: (index, log of amp * exp(-a r), mask of rows with amp > 0 or None)
@@ -341,19 +340,20 @@ class ForwardModel:
             if fp_rows.size:
                 contrib[fp_rows] = acc[fp_rows] * (tb.source_bare[m][None, :] * fp_pair[m])
             Y += contrib
-        Y *= gain[:, None]
-        for level, shape in ((crosstalk_db, tb.crosstalk), (ringing_db, tb.ringing)):
-            if level is None:
-                continue
-            lin = np.where(np.isfinite(b(level)), 10.0 ** (b(level) / 20.0), 0.0) * tb.ref_peak_v
-            if np.any(lin):
-                Y += lin[:, None] * shape[None, :]
-        if np.any(jitter):
-            Y *= np.exp(-1j * omega[None, :] * jitter[:, None])
-        cdtype = np.complex64 if np.dtype(dtype) == np.float32 else np.complex128
-        full = np.zeros((n, tb.n_fft // 2 + 1), cdtype)
-        full[:, tb.bins] = Y
-        return sfft.irfft(full, tb.n_fft, axis=1)[:, : self.n_samples]
+        return render(tb, Y, self.n_samples, gain=gain, jitter_s=jitter, crosstalk_db=crosstalk_db,
+                      ringing_db=ringing_db, dtype=dtype)
+
+    def confound(self, clean_v: np.ndarray, temperature_c, *, gain=1.0, jitter_s=0.0, attenuation_db_per_m=0.0,
+                 crosstalk_db=None, ringing_db=None, dtype=np.float64) -> np.ndarray:
+        """Noise-free records of the direct path made elsewhere (full-wave) given this model's confounders.
+
+        Band, attenuation over the path, gain, coherent noise and jitter exactly as
+        :meth:`synthesize` applies them (:func:`waneguide.simulation._confound.confound_records`);
+        no echoes. Follow with :meth:`finish` for noise, clipping and counts.
+        """
+        return confound_records(self, clean_v, temperature_c, gain=gain, jitter_s=jitter_s,
+                                attenuation_db_per_m=attenuation_db_per_m, crosstalk_db=crosstalk_db,
+                                ringing_db=ringing_db, dtype=dtype)
 
     def finish(self, clean_v: np.ndarray, snr_db, rngs: Sequence[np.random.Generator] | np.random.Generator | None,
                *, clip: bool = True, out: np.ndarray | None = None) -> np.ndarray:

@@ -319,3 +319,14 @@ def test_cli_simulate_writes_and_summarises(tmp_path, family_fb2):
     rc, out, err = cli("simulate", "--family", str(tmp_path / "missing.toml"), "--cases", "3", "--out", str(tmp_path / "z"))
     assert rc == 2 and "does not exist" in err
     assert not (tmp_path / "z").exists()
+
+
+def test_a_campaign_too_large_for_this_machine_is_refused_before_any_work(tmp_path, family_fb2):
+    # issue 11: `--cases 1000000000` ran out of memory; the estimate (Family.campaign_memory_bytes)
+    # is checked against the machine's physical memory first, and nothing is written
+    from waneguide.core.errors import InputError
+    from waneguide.simulation.campaign import run_campaign
+
+    with pytest.raises(InputError, match=r"would need about .* GiB of memory .*this machine has"):
+        run_campaign(family_fb2, 1_000_000_000, tmp_path / "huge", seed=0, progress=False)
+    assert not any((tmp_path / "huge").glob("**/*")) if (tmp_path / "huge").exists() else True

@@ -17,6 +17,9 @@ def register(sub) -> None:
                    help="worker processes on this machine (default 1: in this process; -1: every core)")
     p.add_argument("--scheduler", default=None, metavar="ADDRESS",
                    help="Dask scheduler address, e.g. tcp://127.0.0.1:8786, or 'local' (overrides --jobs)")
+    p.add_argument("--fidelity", choices=("fast", "full"), default="fast",
+                   help="fast: modal-synthesis model (default); full: full-wave solver, one run per case and "
+                        "baseline (seconds each), same campaign layout, confounders and noise")
     p.set_defaults(func=run)
 
 
@@ -27,7 +30,7 @@ def run(args) -> int:
 
     try:
         camp = run_campaign(args.family, args.cases, args.out, seed=args.seed, n_jobs=args.jobs,
-                            scheduler=args.scheduler, progress=not args.no_progress)
+                            scheduler=args.scheduler, progress=not args.no_progress, fidelity=args.fidelity)
     except KeyboardInterrupt:
         print(f"finished chunks are kept in {args.out}; rerun the same command to resume", file=sys.stderr)
         raise
