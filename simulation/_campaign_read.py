@@ -213,5 +213,13 @@ def load_campaign(out_dir: str | Path) -> Campaign:
                          f"{man['family_fingerprint']}; the manifest was edited. Re-simulate into a new folder.")
     for entry in man["chunks"]:
         check_present(out / entry["file"])
+    expected = man.get("cases_sha256")
+    if expected is not None:  # campaigns written before this check carry no hash of their case table
+        found = file_sha256(out / "cases.parquet")
+        if found != expected:
+            raise InputError(
+                f"campaign case table {out / 'cases.parquet'} does not match its SHA-256 in manifest.json (expected "
+                f"{expected}, found {found}): the ground truth was changed or damaged. Delete cases.parquet and re-run "
+                "`waneguide simulate` with the same arguments: it rebuilds the table from the plan and the chunks.")
     cases = pd.read_parquet(out / "cases.parquet")
     return Campaign(path=out, manifest=man, family=family, cases=cases)

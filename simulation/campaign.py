@@ -68,7 +68,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from waneguide.core.atomic import check_output_dir
+from waneguide.core.atomic import check_output_dir, file_sha256
 from waneguide.core.errors import InputError
 from waneguide.core.runner import check_n_jobs, check_scheduler, run_tasks
 from waneguide.features.family import Family
@@ -301,6 +301,7 @@ def run_campaign(
                "n_cases": int(min(chunk_size, n - k * chunk_size)), "sha256": results[k][1]} for k in range(n_chunks)]
     man = manifest("complete", chunks)
     man["columns"] = list(cases.columns)
+    man["cases_sha256"] = file_sha256(out / "cases.parquet")  # the ground truth is sealed too
     write_manifest(out, man)
     camp = load_campaign(out)
     camp.run_info = {"computed_chunks": len(tasks), "reused_chunks": n_chunks - len(tasks),

@@ -330,3 +330,21 @@ def test_a_campaign_too_large_for_this_machine_is_refused_before_any_work(tmp_pa
     with pytest.raises(InputError, match=r"would need about .* GiB of memory .*this machine has"):
         run_campaign(family_fb2, 1_000_000_000, tmp_path / "huge", seed=0, progress=False)
     assert not any((tmp_path / "huge").glob("**/*")) if (tmp_path / "huge").exists() else True
+
+
+def test_a_changed_case_table_is_refused_and_the_fix_rebuilds_it(reference, tmp_path, family_fb2):
+    # issue 11: cases.parquet (the ground truth) was covered by no hash; 16 flipped bytes changed 85
+    # values silently. Now its SHA-256 is in the manifest and checked on load.
+    import shutil
+
+    copy = tmp_path / "cases-tampered"
+    shutil.copytree(reference, copy)
+    original = (copy / "cases.parquet").read_bytes()
+    _flip_a_byte(copy / "cases.parquet")
+    with pytest.raises(InputError, match=r"case table .*cases.parquet does not match its SHA-256"):
+        load_campaign(copy)
+    # the fix the message names: delete the table and re-run with the same arguments
+    (copy / "cases.parquet").unlink()
+    man = json.loads((copy / "manifest.json").read_text())
+    run_campaign(family_fb2, man["n_cases"], copy, seed=man["seed"], chunk_size=man["chunk_size"], progress=False)
+    assert (copy / "cases.parquet").read_bytes() == original
