@@ -266,3 +266,19 @@ def test_cli_refuses_jobs_below_one(tmp_path, capsys):
     err = capsys.readouterr().err
     assert rc == 2 and "--jobs must be a positive whole number" in err and "got 0" in err
     assert not (tmp_path / "m").exists()
+
+
+@pytest.mark.parametrize("name", ["../outside.npz", "/etc/passwd", "sub/../../outside.npz"])
+def test_measured_csv_cannot_reach_outside_its_folder(tmp_path, family_fb2, name):
+    # issue 11: the measured-cases CSV read files outside its folder and echoed a foreign first line
+    from waneguide.core.errors import InputError
+    from waneguide.training._data import read_measured
+
+    folder = tmp_path / "coupons"
+    folder.mkdir()
+    (tmp_path / "outside.npz").write_text("SECRET FIRST LINE\n")
+    csv = folder / "measured.csv"
+    csv.write_text(f"file,max_loss_pct\n{name},10\n")
+    with pytest.raises(InputError, match="lies outside the CSV's folder") as info:
+        read_measured(csv, family_fb2)
+    assert "SECRET" not in str(info.value) and "root:" not in str(info.value)

@@ -143,6 +143,19 @@ def _measured_table(csv_path: Path) -> tuple[pd.DataFrame, list[str]]:
     return tab, tcols
 
 
+def _confined(csv_path: Path, root: Path, name, i: int, column: str) -> Path:
+    """``root / name``, refused when it leaves the CSV's folder (``../``, an absolute path, a link out).
+
+    The file's name is not echoed from anywhere but the CSV itself; the content of a file outside
+    the folder is never read.
+    """
+    target = (root / str(name)).resolve()
+    if not target.is_relative_to(root.resolve()):
+        raise InputError(f"{csv_path}: row {i + 2}, column {column}: {str(name)[:200]!r} lies outside the CSV's "
+                         f"folder {str(root)!r}; list captures by paths inside that folder")
+    return target
+
+
 def read_measured(csv_path, family) -> tuple[pd.DataFrame, pd.DataFrame, np.ndarray]:
     """Features, targets and groups (path) of measured cases listed in a CSV.
 
@@ -155,14 +168,14 @@ def read_measured(csv_path, family) -> tuple[pd.DataFrame, pd.DataFrame, np.ndar
     csv_path = Path(csv_path)
     tab, tcols = _measured_table(csv_path)
     root = csv_path.parent
-    caps = [read_capture(root / str(f)) for f in tab["file"]]
+    caps = [read_capture(_confined(csv_path, root, f, i, "file")) for i, f in enumerate(tab["file"])]
     paths = (tab["path_id"].astype(str).tolist() if "path_id" in tab.columns
              else [c.path_id or f"row{i}" for i, c in enumerate(caps)])
     ex = FeatureExtractor(family)
     rows, keep = [], []
     if "baseline" in tab.columns:
         for i, c in enumerate(caps):
-            rows.append(ex.extract(c, read_capture(root / str(tab["baseline"].iloc[i]))))
+            rows.append(ex.extract(c, read_capture(_confined(csv_path, root, tab["baseline"].iloc[i], i, "baseline"))))
             keep.append(i)
     else:
         zero = (tab[tcols].fillna(-1) == 0).all(axis=1).to_numpy()
