@@ -22,7 +22,7 @@ from waneguide.core.errors import WaneguideError
 from waneguide.features.io import _bounds
 from waneguide.features.io.errors import CaptureTooLargeError, CorruptFileError, EmptyDataError
 
-__all__ = ["H5_ERRORS", "h5_guard", "checked_dataset", "read_dataset", "read_attrs"]
+__all__ = ["H5_ERRORS", "open_h5", "h5_guard", "checked_dataset", "read_dataset", "read_attrs"]
 
 #: What h5py raises on a damaged file (the HDF5 library's errors arrive as these).
 H5_ERRORS = (OSError, KeyError, RuntimeError, ValueError, TypeError, IndexError, AttributeError, UnicodeError,
@@ -35,6 +35,14 @@ _FILTERS = {_DEFLATE: "deflate", _SHUFFLE: "shuffle", _FLETCHER32: "fletcher32",
 #: Chunks of one dataset: a 4 Mi-sample record in chunks of 64 samples or more (h5py's own
 #: chunking of such a record gives a few hundred chunks).
 MAX_CHUNKS = 2**16
+
+
+def open_h5(path, where: str, kind: str, accepted: str) -> h5py.File:
+    """``h5py.File(path, "r")``, or a :class:`CorruptFileError` saying ``kind`` is unreadable and what is accepted."""
+    try:
+        return h5py.File(path, "r")
+    except H5_ERRORS as exc:
+        raise CorruptFileError(f"{where}: not a readable {kind} ({exc}); accepted: {accepted}") from None
 
 
 @contextmanager

@@ -15,9 +15,9 @@ import numpy as np
 from waneguide.core.atomic import atomic_path
 from waneguide.features.capture import Capture
 from waneguide.features.io import _bounds
-from waneguide.features.io._h5 import H5_ERRORS, checked_dataset, h5_guard, read_attrs, read_dataset
+from waneguide.features.io._h5 import checked_dataset, h5_guard, open_h5, read_attrs, read_dataset
 from waneguide.features.io._meta import capture_from_fields, fields_from_capture
-from waneguide.features.io.errors import CorruptFileError, MissingFieldError
+from waneguide.features.io.errors import MissingFieldError
 
 __all__ = ["read_hdf5_capture", "write_hdf5_capture"]
 
@@ -30,13 +30,8 @@ def read_hdf5_capture(path: str | os.PathLike) -> Capture:
     """
     where = str(path)
     _bounds.check_file_size(path, text=False)
-    try:
-        fh = h5py.File(path, "r")
-    except H5_ERRORS as exc:
-        raise CorruptFileError(
-            f"{where}: not a readable HDF5 file ({exc}); accepted: an HDF5 file with an '/amplitude' "
-            "dataset. Write the capture again, or export it as .csv, .mat or .npz."
-        ) from None
+    fh = open_h5(path, where, "HDF5 file", "an HDF5 file with an '/amplitude' dataset. Write the capture "
+                 "again, or export it as .csv, .mat or .npz.")
     with fh, h5_guard(where, "HDF5 capture"):
         ds = checked_dataset(fh, "amplitude", where)
         if ds is None:

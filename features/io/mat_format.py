@@ -26,7 +26,7 @@ from waneguide.core.atomic import atomic_path
 from waneguide.core.errors import InputError, WaneguideError
 from waneguide.features.capture import Capture
 from waneguide.features.io import _bounds
-from waneguide.features.io._h5 import H5_ERRORS, checked_dataset, h5_guard, read_attrs, read_dataset
+from waneguide.features.io._h5 import checked_dataset, h5_guard, open_h5, read_attrs, read_dataset
 from waneguide.features.io._meta import capture_from_fields, fields_from_capture
 from waneguide.features.io.errors import CaptureTooLargeError, CorruptFileError, InvalidFieldError, MissingFieldError
 
@@ -139,13 +139,8 @@ def _decode_h5(node, name, where):
 
 
 def _read_v73(path, where):
-    try:
-        fh = h5py.File(path, "r")
-    except H5_ERRORS as exc:
-        raise CorruptFileError(
-            f"{where}: not a readable MATLAB v7.3 (HDF5) file ({exc}); accepted: MATLAB v5 or v7.3 files "
-            "written by `save`. Save the capture again, or export it as .csv, .h5 or .npz."
-        ) from None
+    fh = open_h5(path, where, "MATLAB v7.3 (HDF5) file", "MATLAB v5 or v7.3 files written by `save`. Save the "
+                 "capture again, or export it as .csv, .h5 or .npz.")
     with fh, h5_guard(where, "MATLAB v7.3 (HDF5) file"):
         names = [k for k in fh.keys() if not k.startswith("#") and k != "time_s"]
         _bounds.check_metadata_count(where, len(names))

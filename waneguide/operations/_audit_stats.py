@@ -103,7 +103,6 @@ def reading_targets(readings, *, nominal_thickness_mm: float, path_length_mm: fl
 # --------------------------------------------------------------------------------------
 # 2. matching
 def _times(values):
-
     return pd.to_datetime(pd.Series(values, dtype=object), utc=True, errors="coerce", format="ISO8601")
 
 
@@ -161,7 +160,6 @@ def match_surveys(surveys, scores, *, window_days: float = 7.0):
 # --------------------------------------------------------------------------------------
 # 3. residual arithmetic
 def _z(level: float) -> float:
-
     return float(stats.norm.ppf(0.5 + level / 2.0))
 
 

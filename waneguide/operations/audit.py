@@ -270,7 +270,6 @@ def check_audit_options(*, limit_pct: float | None = None, report_path=None) -> 
 
     limit_pct = check_limit_pct(limit_pct, "limit_pct (--limit-pct)")
     if report_path is not None:
-
         check_output_path(report_path, "audit report (--report)")
     return limit_pct
 
@@ -295,8 +294,6 @@ def run_audit(bundle, readings_csv, *, db_url: str | None = None, report_path=No
         (``ModelBundle.recalibrate``), save the new version beside the old one, log it in
         MLflow and register it as the ``challenger``. Nothing is overwritten.
     """
-
-
     limit_pct = check_audit_options(limit_pct=limit_pct, report_path=report_path)
     db_file = sqlite_file(resolve_db_url(db_url))
     if db_file is not None and not db_file.is_file():

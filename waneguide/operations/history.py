@@ -262,7 +262,6 @@ class History:
                 "old file for its records.")
 
     def _make_engine(self):
-
         if not self.is_sqlite:
             try:
                 return sa.create_engine(self.url, pool_pre_ping=True)
@@ -317,7 +316,6 @@ class History:
             return "<unparseable URL>"
 
     def _define_tables(self) -> dict:
-
         md = sa.MetaData()
         types = {"str": sa.String(255), "text": sa.Text(), "float": sa.Float(), "bool": sa.Boolean(), "int": sa.Integer()}
         cols = [sa.Column("id", sa.Integer, primary_key=True, autoincrement=True)]
@@ -566,7 +564,6 @@ class History:
         return pd.DataFrame(rows, columns=[c.name for c in t.columns])
 
     def audits(self):
-
         t = self._tables_ready()["audits"]
         with self.engine.connect() as conn:
             rows = conn.execute(sa.select(t).order_by(t.c.id)).mappings().all()

@@ -55,7 +55,6 @@ def registered_name(family_name: str) -> str:
 
 
 def _pip_requirements() -> list[str]:
-
     reqs = []
     for dist in ("waneguide", "numpy", "pandas", "scikit-learn", "lightgbm", "skops", "pydantic", "scipy",
                  "pyarrow", "mlflow"):
@@ -74,8 +73,6 @@ def register_bundle(bundle_dir, family_name: str, *, alias: str | None = DEFAULT
     of the family's experiment. ``alias`` (default ``in-service``) is moved to the new version;
     ``None`` leaves the aliases alone.
     """
-
-
     bundle_dir = Path(bundle_dir).resolve()
     bundle = load_bundle(bundle_dir)  # refuses a tampered or foreign bundle before it is registered
     bundle_dir = bundle.path

@@ -78,18 +78,15 @@ def _fmt(v: Any, digits: int = 2, pct: bool = False) -> str:
 
 
 def _times(values):
-
     return pd.to_datetime(pd.Series(list(values), dtype=object), utc=True, errors="coerce", format="ISO8601")
 
 
 def _fig(w=8.0, h=3.6):
-
     fig = Figure(figsize=(w, h))
     return fig
 
 
 def _date_axis(ax):
-
     loc = mdates.AutoDateLocator(minticks=3, maxticks=8)
     ax.xaxis.set_major_locator(loc)
     ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc))
@@ -220,7 +217,6 @@ def _drift_figure(drift, settings):
 
 
 def _feature_drift_figure(ft, top=15):
-
     g = ft.dropna(subset=["psi"]).sort_values("psi", ascending=False).head(top)[::-1]
     fig = _fig(8.0, 0.32 * max(len(g), 3) + 1.2)
     ax = fig.add_subplot(1, 1, 1)
@@ -272,7 +268,6 @@ def render_report(*, scores, audit=None, model: Mapping[str, Any] | None = None,
 
 
 def _render_report(*, scores, audit, model, limit_pct, title) -> str:
-
     model = dict(model or {})
     if audit is not None and not model:
         model = dict(audit.model)

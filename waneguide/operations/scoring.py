@@ -90,7 +90,6 @@ def load_model(model, *, tracking_uri: str | None = None):
 
 
 def _is_capture(x) -> bool:
-
     return isinstance(x, Capture)
 
 
@@ -119,12 +118,10 @@ def _items(captures) -> list:
 
 
 def _read(item):
-
     if _is_capture(item):
         return item
     cap = read_capture(item)
     if not cap.source:
-
         cap = replace(cap, source=str(item))
     return cap
 
@@ -346,8 +343,6 @@ def score_captures(bundle, captures, *, baselines=None, limit_pct: float | None 
         rate, missing path_id), a capture without a baseline of its path, a bundle that
         fails its integrity check, bad ``limit_pct``/``n_jobs``/``chunk_size``.
     """
-
-
     limit_pct = check_limit_pct(limit_pct, "limit_pct (--limit-pct)")
     n_jobs = check_n_jobs(n_jobs, "n_jobs (--jobs)")
     scheduler = check_scheduler(scheduler)
