@@ -1,6 +1,6 @@
 """One runner for independent tasks: in this process, on joblib workers, or on a Dask cluster.
 
-Campaign simulation uses it; scoring and feature extraction can use the same call.
+Campaign simulation, feature extraction (threads over row blocks) and scoring use it.
 
 API
 ---
@@ -25,8 +25,9 @@ unit="task", weight=None, initial=0, prefer="processes") -> Iterator[(key, resul
       passed in.
 
     ``shared``: a mapping ``name -> object`` passed to every call as keyword arguments.
-    On Dask each object is scattered once to every worker (``broadcast=True``); with
-    joblib it is pickled with each task (large numpy arrays are memory-mapped by joblib).
+    On Dask each object is scattered once to every worker (``broadcast=True``); with joblib
+    processes it is pickled once to a private temporary file that each worker loads once; with
+    threads it is shared in memory.
 
     ``progress``: a tqdm bar on stderr (``desc``, ``unit``); it starts at ``initial`` (work
     done before this call), its total is ``initial`` plus the summed weights, and each
